@@ -1,0 +1,83 @@
+package sequential
+
+import (
+	"math"
+	"math/rand/v2"
+)
+
+// ExpWeibull is the exponentiated Weibull distribution (Mudholkar and
+// Srivastava, 1993) on x > 0, the law of one latent relative
+// cross-elasticity inside a segment:
+//
+//	G(x) = 1 - exp(-(x/S)^K)    (Weibull CDF)
+//	F(x) = G(x)^A               (exponentiated Weibull CDF)
+//
+// A > 0 is the exponentiation power, K > 0 the Weibull shape and S > 0 the
+// scale, in relative-elasticity units. A = 1 is the Weibull distribution;
+// the maximum of m independent draws is ExpWeibull{m*A, K, S}.
+type ExpWeibull struct {
+	A, K, S float64
+}
+
+// Log1mExp returns log(1 - exp(-z)) for z > 0 without cancellation
+// (Maechler 2012): log(-expm1(-z)) for z <= ln 2, log1p(-exp(-z)) above.
+// It returns -Inf for z == 0 and NaN for z < 0.
+func Log1mExp(z float64) float64 {
+	switch {
+	case z < 0 || math.IsNaN(z):
+		return math.NaN()
+	case z <= math.Ln2:
+		return math.Log(-math.Expm1(-z))
+	default:
+		return math.Log1p(-math.Exp(-z))
+	}
+}
+
+// logG returns log G(x) = log(1 - exp(-(x/s)^k)) given log x.
+func logWeibullCDF(logx, k, logs float64) float64 {
+	return Log1mExp(math.Exp(k * (logx - logs)))
+}
+
+// LogProb returns the log density at x; -Inf for x <= 0.
+func (d ExpWeibull) LogProb(x float64) float64 {
+	if x <= 0 {
+		return math.Inf(-1)
+	}
+	lx := math.Log(x / d.S)
+	z := math.Exp(d.K * lx)
+	return math.Log(d.A) + math.Log(d.K) - math.Log(d.S) + (d.K-1)*lx - z + (d.A-1)*Log1mExp(z)
+}
+
+// Prob returns the density at x.
+func (d ExpWeibull) Prob(x float64) float64 { return math.Exp(d.LogProb(x)) }
+
+// LogCDF returns log F(x); -Inf for x <= 0.
+func (d ExpWeibull) LogCDF(x float64) float64 {
+	if x <= 0 {
+		return math.Inf(-1)
+	}
+	return d.A * Log1mExp(math.Pow(x/d.S, d.K))
+}
+
+// CDF returns F(x) = P(X <= x).
+func (d ExpWeibull) CDF(x float64) float64 { return math.Exp(d.LogCDF(x)) }
+
+// Survival returns 1 - F(x) computed without cancellation for small F.
+func (d ExpWeibull) Survival(x float64) float64 { return -math.Expm1(d.LogCDF(x)) }
+
+// Quantile returns Q(u) = S * (-log(1 - u^(1/A)))^(1/K) for u in [0, 1].
+// It panics for u outside [0, 1], which is programmer misuse.
+func (d ExpWeibull) Quantile(u float64) float64 {
+	if u < 0 || u > 1 || math.IsNaN(u) {
+		panic("sequential: ExpWeibull.Quantile: u outside [0, 1]")
+	}
+	// 1 - u^(1/A) = -expm1(log(u)/A) keeps digits when u^(1/A) is near 1.
+	w := -math.Log(-math.Expm1(math.Log(u) / d.A))
+	return d.S * math.Pow(w, 1/d.K)
+}
+
+// Rand draws one value using src by inversion.
+func (d ExpWeibull) Rand(src *rand.Rand) float64 {
+	// Float64 is in [0, 1); 1-u in (0, 1] avoids Quantile(0) = 0.
+	return d.Quantile(1 - src.Float64())
+}
