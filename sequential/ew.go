@@ -71,8 +71,9 @@ func (d ExpWeibull) Quantile(u float64) float64 {
 	if u < 0 || u > 1 || math.IsNaN(u) {
 		panic("sequential: ExpWeibull.Quantile: u outside [0, 1]")
 	}
-	// 1 - u^(1/A) = -expm1(log(u)/A) keeps digits when u^(1/A) is near 1.
-	w := -math.Log(-math.Expm1(math.Log(u) / d.A))
+	// -log(1 - u^(1/A)) through Log1mExp keeps digits both when u^(1/A)
+	// is near 1 and when it is tiny (where 1 - u^(1/A) rounds to 1).
+	w := -Log1mExp(-math.Log(u) / d.A)
 	return d.S * math.Pow(w, 1/d.K)
 }
 

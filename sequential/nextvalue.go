@@ -61,9 +61,10 @@ func (nv NextValue) Quantile(u float64) float64 {
 	if u == 0 {
 		return 0
 	}
-	// log of G(y_n) u^(1/power); 1 - exp(that) by expm1 keeps digits.
+	// lg = log(G(y_n) u^(1/power)) <= 0; -log(1 - exp(lg)) through
+	// Log1mExp keeps digits at both ends.
 	lg := nv.capLogG + math.Log(u)/nv.power
-	w := -math.Log(-math.Expm1(lg))
+	w := -Log1mExp(-lg)
 	x := math.Exp(nv.logS) * math.Pow(w, 1/nv.k)
 	return math.Min(x, nv.capX)
 }

@@ -1,0 +1,135 @@
+package sequential
+
+import (
+	"errors"
+	"fmt"
+	"math/rand/v2"
+)
+
+// GibbsConfig sets up the batch sampler.
+type GibbsConfig struct {
+	Prior Prior
+	// Aux is the number m of auxiliary segments drawn from the base
+	// measure for each reassignment (Neal 2000, Algorithm 8); >= 1.
+	Aux int
+	// Sweeps is the total number of sweeps, Burn of them discarded;
+	// every Thin-th sweep after burn-in is kept as a draw.
+	Sweeps, Burn, Thin int
+}
+
+// DefaultGibbsConfig returns m = 3 auxiliary segments and 1,500 sweeps,
+// 500 of them burn-in, keeping every 2nd: 500 draws.
+func DefaultGibbsConfig() GibbsConfig {
+	return GibbsConfig{Prior: DefaultPrior(), Aux: 3, Sweeps: 1500, Burn: 500, Thin: 2}
+}
+
+// ErrConfig reports an invalid sampler setting.
+var ErrConfig = errors.New("sequential: invalid configuration")
+
+// Validate reports the first setting out of range.
+func (c GibbsConfig) Validate() error {
+	if err := c.Prior.Validate(); err != nil {
+		return err
+	}
+	switch {
+	case c.Aux < 1:
+		return fmt.Errorf("%w: aux = %d, want >= 1", ErrConfig, c.Aux)
+	case c.Sweeps < 1:
+		return fmt.Errorf("%w: sweeps = %d, want >= 1", ErrConfig, c.Sweeps)
+	case c.Burn < 0 || c.Burn >= c.Sweeps:
+		return fmt.Errorf("%w: burn = %d, want 0 <= burn < sweeps (%d)", ErrConfig, c.Burn, c.Sweeps)
+	case c.Thin < 1:
+		return fmt.Errorf("%w: thin = %d, want >= 1", ErrConfig, c.Thin)
+	}
+	return nil
+}
+
+// Gibbs is the batch Pólya-urn sampler for the non-conjugate mixture:
+// Algorithm 8 of Neal (2000) for assignments with p integrated out,
+// slice sampling (Neal 2003) of each segment's log a, log k, log s, and
+// Escobar and West (1995) for alpha. It is the reference the sequential
+// updater is validated against. Not safe for concurrent use.
+type Gibbs struct {
+	cfg   GibbsConfig
+	prior Prior
+	st    *State
+	mem   [][]int
+	sweep int
+}
+
+// NewGibbs starts a sampler over data (every datum non-nil) with all
+// products in one segment whose parameters and alpha are drawn from the
+// prior with src.
+func NewGibbs(data []*Datum, cfg GibbsConfig, src *rand.Rand) (*Gibbs, error) {
+	if err := cfg.Validate(); err != nil {
+		return nil, err
+	}
+	g := &Gibbs{cfg: cfg, prior: cfg.Prior}
+	g.st = newState(&g.prior, cfg.Aux, len(data), cfg.Prior.DrawAlpha(src))
+	if len(data) == 0 {
+		return g, nil
+	}
+	c := g.st.newSegment(cfg.Prior.DrawTheta(src))
+	for i, d := range data {
+		if d == nil {
+			return nil, fmt.Errorf("%w: datum %d is nil", ErrDatum, i)
+		}
+		g.st.data[i] = d
+		g.st.n++
+		g.st.join(i, c)
+	}
+	return g, nil
+}
+
+// Sweep performs one full scan: every product reassigned once in order,
+// every occupied segment's parameters updated, then alpha.
+func (g *Gibbs) Sweep(src *rand.Rand) {
+	st := g.st
+	for i := range st.data {
+		if st.data[i] != nil {
+			st.reassign(i, src)
+		}
+	}
+	g.mem = st.members(g.mem)
+	for c := range st.segs {
+		if st.segs[c].size > 0 {
+			st.updateTheta(uint16(c), g.mem[c], src)
+		}
+	}
+	st.updateAlpha(src)
+	g.sweep++
+}
+
+// Draw returns the current state as an equal-weight draw; the labels are
+// copied, so the draw stays valid after further sweeps.
+func (g *Gibbs) Draw() Draw {
+	d := g.st.draw(0)
+	d.Labels = append([]uint16(nil), d.Labels...)
+	return d
+}
+
+// NumSegments returns the number of occupied segments now.
+func (g *Gibbs) NumSegments() int { return g.st.numSegments() }
+
+// Alpha returns the current concentration.
+func (g *Gibbs) Alpha() float64 { return g.st.alpha }
+
+// Progress is called by Run after every sweep with the sweep number
+// (1-based), the total and the current number of segments.
+type Progress func(sweep, total, segments int)
+
+// Run performs cfg.Sweeps sweeps and returns the kept draws (every Thin-th
+// after Burn). progress may be nil.
+func (g *Gibbs) Run(src *rand.Rand, progress Progress) []Draw {
+	var out []Draw
+	for s := 1; s <= g.cfg.Sweeps; s++ {
+		g.Sweep(src)
+		if s > g.cfg.Burn && (s-g.cfg.Burn)%g.cfg.Thin == 0 {
+			out = append(out, g.Draw())
+		}
+		if progress != nil {
+			progress(s, g.cfg.Sweeps, g.st.numSegments())
+		}
+	}
+	return out
+}

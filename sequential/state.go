@@ -1,0 +1,374 @@
+package sequential
+
+import (
+	"math"
+	"math/rand/v2"
+	"sync/atomic"
+)
+
+// Absent marks a product slot that holds no datum in a State (never
+// added, or removed).
+const Absent = math.MaxUint16
+
+// MaxSegments is the largest number of segments a State can hold at once
+// (labels are uint16 and Absent is reserved).
+const MaxSegments = math.MaxUint16 - 1
+
+// segment is one occupied (or free) mixture component of a State.
+type segment struct {
+	theta Theta
+	kern  kernel
+	size  int
+	// reported and considered are the count totals A = sum n_j and
+	// A + B = sum L_j of the members; p is integrated out against them.
+	reported, considered int
+}
+
+func (s *segment) setTheta(t Theta) {
+	s.theta = t
+	s.kern = t.kernel()
+}
+
+// labelBuf is a copy-on-write assignment vector shared between states
+// after resampling; refs counts the states that point at it.
+type labelBuf struct {
+	l    []uint16
+	refs atomic.Int32
+}
+
+// State is one configuration of the Dirichlet process mixture: the segment
+// of every product slot, the kernel parameters of every occupied segment
+// and the concentration alpha. It is the unit the batch sampler moves and
+// the body of one particle. A State is not safe for concurrent use; two
+// States may share label storage, which is copied on first write.
+type State struct {
+	data   []*Datum // shared, read-only; data[i] nil when slot i is absent
+	labels *labelBuf
+	segs   []segment
+	free   []uint16 // indices of segs with size 0, reused before growing
+	n      int      // number of present products
+	alpha  float64
+	prior  *Prior
+	m      int // auxiliary segments per reassignment (Algorithm 8)
+
+	// scratch for reassign, reused across calls
+	logw []float64
+	cand []uint16
+	aux  []Theta
+}
+
+// newState returns an empty state over data slots (all absent).
+func newState(prior *Prior, m int, slots int, alpha float64) *State {
+	lb := &labelBuf{l: make([]uint16, slots)}
+	lb.refs.Store(1)
+	for i := range lb.l {
+		lb.l[i] = Absent
+	}
+	return &State{data: make([]*Datum, slots), labels: lb, alpha: alpha, prior: prior, m: m}
+}
+
+// clone returns a state sharing label storage with s (copy on write).
+func (s *State) clone() *State {
+	c := &State{
+		data:   s.data,
+		labels: s.labels,
+		segs:   append([]segment(nil), s.segs...),
+		free:   append([]uint16(nil), s.free...),
+		n:      s.n,
+		alpha:  s.alpha,
+		prior:  s.prior,
+		m:      s.m,
+	}
+	s.labels.refs.Add(1)
+	return c
+}
+
+// release drops this state's reference to its label storage.
+func (s *State) release() { s.labels.refs.Add(-1) }
+
+// ownLabels makes the label storage private before a write.
+func (s *State) ownLabels() []uint16 {
+	if s.labels.refs.Load() > 1 {
+		nb := &labelBuf{l: append([]uint16(nil), s.labels.l...)}
+		nb.refs.Store(1)
+		s.labels.refs.Add(-1)
+		s.labels = nb
+	}
+	return s.labels.l
+}
+
+func (s *State) label(i int) uint16 { return s.labels.l[i] }
+
+func (s *State) setLabel(i int, c uint16) { s.ownLabels()[i] = c }
+
+// numSegments returns the number of occupied segments.
+func (s *State) numSegments() int { return len(s.segs) - len(s.free) }
+
+// newSegment returns the index of an empty segment holding t.
+func (s *State) newSegment(t Theta) uint16 {
+	var c uint16
+	if k := len(s.free); k > 0 {
+		c = s.free[k-1]
+		s.free = s.free[:k-1]
+	} else {
+		if len(s.segs) >= MaxSegments {
+			panic("sequential: too many segments")
+		}
+		s.segs = append(s.segs, segment{})
+		c = uint16(len(s.segs) - 1)
+	}
+	s.segs[c] = segment{}
+	s.segs[c].setTheta(t)
+	return c
+}
+
+// join puts present-but-unassigned slot i into segment c.
+func (s *State) join(i int, c uint16) {
+	d := s.data[i]
+	g := &s.segs[c]
+	g.size++
+	g.reported += d.N()
+	g.considered += d.L()
+	s.setLabel(i, c)
+}
+
+// leave takes slot i out of its segment and returns that segment and
+// whether it is now empty (its index is then on the free list, with its
+// theta still readable until reused).
+func (s *State) leave(i int) (c uint16, emptied bool) {
+	c = s.label(i)
+	d := s.data[i]
+	g := &s.segs[c]
+	g.size--
+	g.reported -= d.N()
+	g.considered -= d.L()
+	s.setLabel(i, Absent)
+	if g.size == 0 {
+		s.free = append(s.free, c)
+		return c, true
+	}
+	return c, false
+}
+
+// predictiveTerms fills s.logw and s.cand with the Algorithm-8 terms for
+// placing datum d (currently in no segment): for each occupied segment c,
+// log n_c + log f(d | theta_c, count stats of c); then for each of the m
+// auxiliary thetas in s.aux, log(alpha/m) + log f(d | aux, empty counts).
+// The candidate label of an auxiliary term is Absent. It returns the log
+// of the sum of the terms.
+func (s *State) predictiveTerms(d *Datum) float64 {
+	s.logw = s.logw[:0]
+	s.cand = s.cand[:0]
+	pa, pb := s.prior.CountA, s.prior.CountB
+	maxw := math.Inf(-1)
+	for c := range s.segs {
+		g := &s.segs[c]
+		if g.size == 0 {
+			continue
+		}
+		w := math.Log(float64(g.size)) + d.valueLogLik(&g.kern) + d.CountLogPred(g.reported, g.considered, pa, pb)
+		s.logw = append(s.logw, w)
+		s.cand = append(s.cand, uint16(c))
+		maxw = math.Max(maxw, w)
+	}
+	if len(s.aux) > 0 {
+		base := math.Log(s.alpha/float64(len(s.aux))) + d.CountLogPred(0, 0, pa, pb)
+		for j := range s.aux {
+			kn := s.aux[j].kernel()
+			w := base + d.valueLogLik(&kn)
+			s.logw = append(s.logw, w)
+			s.cand = append(s.cand, Absent)
+			maxw = math.Max(maxw, w)
+		}
+	}
+	sum := 0.0
+	for _, w := range s.logw {
+		sum += math.Exp(w - maxw)
+	}
+	return maxw + math.Log(sum)
+}
+
+// pick draws an index of s.logw with probability proportional to exp.
+func (s *State) pick(logZ float64, src *rand.Rand) int {
+	u := src.Float64()
+	acc := 0.0
+	for j, w := range s.logw {
+		acc += math.Exp(w - logZ)
+		if u < acc {
+			return j
+		}
+	}
+	return len(s.logw) - 1
+}
+
+// drawAux fills s.aux with m thetas from the base measure; when own is
+// non-nil it takes the first slot (Algorithm 8 for a product that was
+// alone in its segment).
+func (s *State) drawAux(own *Theta, src *rand.Rand) {
+	s.aux = s.aux[:0]
+	if own != nil {
+		s.aux = append(s.aux, *own)
+	}
+	for len(s.aux) < s.m {
+		s.aux = append(s.aux, s.prior.DrawTheta(src))
+	}
+}
+
+// place draws a segment for absent-from-segments slot i given the current
+// s.logw terms and joins it; auxiliary picks open a new segment.
+func (s *State) place(i int, logZ float64, src *rand.Rand) {
+	j := s.pick(logZ, src)
+	c := s.cand[j]
+	if c == Absent {
+		c = s.newSegment(s.aux[j-(len(s.cand)-len(s.aux))])
+	}
+	s.join(i, c)
+}
+
+// reassign is one Algorithm-8 (Neal 2000) update of product i's segment:
+// it leaves the current posterior invariant.
+func (s *State) reassign(i int, src *rand.Rand) {
+	c, emptied := s.leave(i)
+	if emptied {
+		t := s.segs[c].theta
+		s.drawAux(&t, src)
+	} else {
+		s.drawAux(nil, src)
+	}
+	logZ := s.predictiveTerms(s.data[i])
+	s.place(i, logZ, src)
+}
+
+// members returns, for every segment index, the present slots in it.
+// The result reuses buf when it is large enough.
+func (s *State) members(buf [][]int) [][]int {
+	if cap(buf) < len(s.segs) {
+		buf = make([][]int, len(s.segs))
+	}
+	buf = buf[:len(s.segs)]
+	for c := range buf {
+		buf[c] = buf[c][:0]
+	}
+	for i, c := range s.labels.l {
+		if c != Absent {
+			buf[c] = append(buf[c], i)
+		}
+	}
+	return buf
+}
+
+// updateTheta refreshes segment c's kernel parameters by univariate slice
+// sampling (Neal 2003, stepping out and shrinkage) of log a, log k and
+// log s in turn, targeting G0 times the value likelihood of the members.
+// The count part does not depend on theta.
+func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
+	g := &s.segs[c]
+	t := g.theta
+	data := s.data
+	pr := s.prior
+
+	// log a: for fixed k and s the value part is linear in a and log a:
+	//   n_tot log a + a * (sum_i sum_m log G(y_im) + (L_i-n_i) log G(y_in)) + const
+	// so one pass over the members makes each evaluation O(1).
+	kn := t.kernel()
+	nTot, sumG := 0.0, 0.0
+	for _, i := range mem {
+		d := data[i]
+		n := d.N()
+		if n == 0 {
+			continue
+		}
+		nTot += float64(n)
+		var lg float64
+		for _, ly := range d.logY {
+			lg = Log1mExp(math.Exp(kn.k * (ly - kn.logS)))
+			sumG += lg
+		}
+		sumG += float64(d.L()-n) * lg
+	}
+	t.LogA = sliceSample(t.LogA, func(la float64) float64 {
+		return pr.LogA.logProb(la) + nTot*la + math.Exp(la)*sumG
+	}, 1, src)
+
+	full := func(th Theta) float64 {
+		k := th.kernel()
+		ll := pr.LogBase(th)
+		for _, i := range mem {
+			ll += data[i].valueLogLik(&k)
+		}
+		return ll
+	}
+	t.LogK = sliceSample(t.LogK, func(v float64) float64 {
+		th := t
+		th.LogK = v
+		return full(th)
+	}, 1, src)
+	t.LogS = sliceSample(t.LogS, func(v float64) float64 {
+		th := t
+		th.LogS = v
+		return full(th)
+	}, 1, src)
+	g.setTheta(t)
+}
+
+// updateAlpha draws alpha given the number of segments K and products N
+// with the auxiliary-variable scheme of Escobar and West (1995) under a
+// Gamma(shape, rate) prior.
+func (s *State) updateAlpha(src *rand.Rand) {
+	n := float64(s.n)
+	if s.n == 0 {
+		s.alpha = s.prior.DrawAlpha(src)
+		return
+	}
+	k := float64(s.numSegments())
+	a0, b0 := s.prior.AlphaShape, s.prior.AlphaRate
+	eta := betaRand(src, s.alpha+1, n)
+	rate := b0 - math.Log(eta)
+	odds := (a0 + k - 1) / (n * rate)
+	shape := a0 + k - 1
+	if src.Float64() < odds/(1+odds) {
+		shape = a0 + k
+	}
+	s.alpha = gammaRand(src, shape) / rate
+}
+
+// sliceSample returns one univariate slice-sampling update of x for the
+// log density f, with initial bracket width w, stepping out at most 32
+// widths and shrinking (Neal 2003, figures 3 and 5).
+func sliceSample(x float64, f func(float64) float64, w float64, src *rand.Rand) float64 {
+	fx := f(x)
+	logy := fx + math.Log(1-src.Float64()) // log(u * f(x)), u in (0, 1]
+	lo := x - w*src.Float64()
+	hi := lo + w
+	j := src.IntN(32)
+	kk := 31 - j
+	for ; j > 0 && f(lo) > logy; j-- {
+		lo -= w
+	}
+	for ; kk > 0 && f(hi) > logy; kk-- {
+		hi += w
+	}
+	for {
+		x1 := lo + src.Float64()*(hi-lo)
+		if f(x1) > logy {
+			return x1
+		}
+		if x1 < x {
+			lo = x1
+		} else {
+			hi = x1
+		}
+		if hi-lo < 1e-12 {
+			return x
+		}
+	}
+}
+
+// draw exports the state as a Draw over slots (labels shared, not copied).
+func (s *State) draw(logWeight float64) Draw {
+	th := make([]Theta, len(s.segs))
+	for c := range s.segs {
+		th[c] = s.segs[c].theta
+	}
+	return Draw{LogWeight: logWeight, Labels: s.labels.l, Segments: th, Alpha: s.alpha}
+}
