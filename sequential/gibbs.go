@@ -76,7 +76,7 @@ func NewGibbs(data []*Datum, cfg GibbsConfig, src *rand.Rand) (*Gibbs, error) {
 		}
 		g.st.data[i] = d
 		g.st.n++
-		g.st.join(i, c)
+		g.st.join(i, d, c)
 	}
 	return g, nil
 }

@@ -56,6 +56,7 @@ func priorState(prior *Prior, n int, src *rand.Rand) *State {
 	for i := 0; i < n; i++ {
 		st.data[i] = &Datum{l: 1} // placeholder counts, replaced by simulateData
 		st.n++
+		d := st.data[i]
 		u := src.Float64() * (float64(i) + st.alpha)
 		acc := 0.0
 		var c uint16 = Absent
@@ -69,7 +70,7 @@ func priorState(prior *Prior, n int, src *rand.Rand) *State {
 		if c == Absent {
 			c = st.newSegment(prior.DrawTheta(src))
 		}
-		st.join(i, c)
+		st.join(i, d, c)
 	}
 	return st
 }

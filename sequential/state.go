@@ -122,9 +122,8 @@ func (s *State) newSegment(t Theta) uint16 {
 	return c
 }
 
-// join puts present-but-unassigned slot i into segment c.
-func (s *State) join(i int, c uint16) {
-	d := s.data[i]
+// join puts slot i, holding datum d and in no segment, into segment c.
+func (s *State) join(i int, d *Datum, c uint16) {
 	g := &s.segs[c]
 	g.size++
 	g.reported += d.N()
@@ -132,12 +131,11 @@ func (s *State) join(i int, c uint16) {
 	s.setLabel(i, c)
 }
 
-// leave takes slot i out of its segment and returns that segment and
-// whether it is now empty (its index is then on the free list, with its
-// theta still readable until reused).
-func (s *State) leave(i int) (c uint16, emptied bool) {
+// leave takes slot i, holding datum d, out of its segment and returns
+// that segment and whether it is now empty (its index is then on the free
+// list, with its theta still readable until reused).
+func (s *State) leave(i int, d *Datum) (c uint16, emptied bool) {
 	c = s.label(i)
-	d := s.data[i]
 	g := &s.segs[c]
 	g.size--
 	g.reported -= d.N()
@@ -214,29 +212,36 @@ func (s *State) drawAux(own *Theta, src *rand.Rand) {
 	}
 }
 
-// place draws a segment for absent-from-segments slot i given the current
-// s.logw terms and joins it; auxiliary picks open a new segment.
-func (s *State) place(i int, logZ float64, src *rand.Rand) {
+// place draws a segment for slot i (datum d, in no segment) given the
+// current s.logw terms and joins it; auxiliary picks open a new segment.
+func (s *State) place(i int, d *Datum, logZ float64, src *rand.Rand) {
 	j := s.pick(logZ, src)
 	c := s.cand[j]
 	if c == Absent {
 		c = s.newSegment(s.aux[j-(len(s.cand)-len(s.aux))])
 	}
-	s.join(i, c)
+	s.join(i, d, c)
 }
 
-// reassign is one Algorithm-8 (Neal 2000) update of product i's segment:
-// it leaves the current posterior invariant.
-func (s *State) reassign(i int, src *rand.Rand) {
-	c, emptied := s.leave(i)
+// detach takes slot i (datum d) out of its segment and prepares the
+// auxiliary thetas of Algorithm 8: the emptied segment's own theta first
+// when i was alone, fresh base-measure draws for the rest.
+func (s *State) detach(i int, d *Datum, src *rand.Rand) {
+	c, emptied := s.leave(i, d)
 	if emptied {
 		t := s.segs[c].theta
 		s.drawAux(&t, src)
 	} else {
 		s.drawAux(nil, src)
 	}
-	logZ := s.predictiveTerms(s.data[i])
-	s.place(i, logZ, src)
+}
+
+// reassign is one Algorithm-8 (Neal 2000) update of product i's segment:
+// it leaves the current posterior invariant.
+func (s *State) reassign(i int, src *rand.Rand) {
+	d := s.data[i]
+	s.detach(i, d, src)
+	s.place(i, d, s.predictiveTerms(d), src)
 }
 
 // members returns, for every segment index, the present slots in it.

@@ -106,10 +106,29 @@ func Redraw(cfg Config, p *Product, src *rand.Rand) {
 		}
 	}
 	p.Reported = p.Latent[:n:n]
-	p.Rivals = make([]string, l)
-	for j := range p.Rivals {
-		p.Rivals[j] = fmt.Sprintf("P-%d", cfg.FirstID+src.IntN(max(cfg.Products, 1)))
+	p.Rivals = rivals(cfg, p.ID, l, src)
+}
+
+// rivals draws l distinct competitor ids other than self: from the
+// category's own products while it has enough, then from a pool of
+// outside-category ids (P-9xxxx).
+func rivals(cfg Config, self string, l int, src *rand.Rand) []string {
+	out := make([]string, 0, l)
+	seen := map[string]bool{self: true}
+	pool := cfg.Products
+	for tries := 0; len(out) < l; tries++ {
+		var id string
+		if tries < 4*l && pool > 1 {
+			id = fmt.Sprintf("P-%d", cfg.FirstID+src.IntN(pool))
+		} else {
+			id = fmt.Sprintf("P-9%04d", src.IntN(10000))
+		}
+		if !seen[id] {
+			seen[id] = true
+			out = append(out, id)
+		}
 	}
+	return out
 }
 
 func assignSegments(cfg Config, src *rand.Rand) []int {

@@ -1,0 +1,280 @@
+package main
+
+import (
+	"context"
+	"encoding/json"
+	"errors"
+	"fmt"
+	"io"
+	"math"
+	"math/rand/v2"
+	"os"
+	"path/filepath"
+	"sort"
+	"strconv"
+	"strings"
+	"text/tabwriter"
+	"time"
+
+	"rivalmix/sequential"
+	"rivalmix/stream"
+)
+
+// fitConfig holds the flags of `rivalmix fit`.
+type fitConfig struct {
+	in, out, category string
+	seed              uint64
+	sweeps, burn      int
+	thin              int
+	threshold         float64
+	similarity        bool
+	strict            bool
+	competitors       int
+	quiet             bool
+}
+
+func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
+	fs := newFlagSet("fit", "--in FILE.jsonl --out posterior.json [flags]",
+		"Fits the segmentation to one category's refit results (JSON lines, one input message per\nline) with the batch sampler, prints a segment table and writes posterior.json.", stderr)
+	var c fitConfig
+	def := sequential.DefaultGibbsConfig()
+	fs.StringVar(&c.in, "in", "", "input file of refit results, one JSON message per line (required)")
+	fs.StringVar(&c.out, "out", "", "posterior JSON to write (required)")
+	fs.StringVar(&c.category, "category", "", "category name written to the output (default: the input file name without extension)")
+	fs.Uint64Var(&c.seed, "seed", 1, "random seed; the same seed and input give the same output")
+	fs.IntVar(&c.sweeps, "sweeps", def.Sweeps, "Gibbs sweeps in total")
+	fs.IntVar(&c.burn, "burn", def.Burn, "sweeps discarded as burn-in")
+	fs.IntVar(&c.thin, "thin", def.Thin, "keep every n-th sweep after burn-in")
+	fs.Float64Var(&c.threshold, "threshold", 0.25, "relative cross-elasticity t for the missed-competitor probability P(next value > t)")
+	fs.BoolVar(&c.similarity, "similarity", false, "also write the N x N co-segment probability matrix")
+	fs.BoolVar(&c.strict, "strict", false, "abort on the first bad line, and reject non-positive entries instead of dropping them")
+	fs.IntVar(&c.competitors, "competitors", 10, "candidate competitors L for messages that do not say")
+	fs.BoolVar(&c.quiet, "quiet", false, "no progress lines")
+	if err := fs.Parse(args); err != nil {
+		return err
+	}
+	if c.in == "" || c.out == "" {
+		fs.Usage()
+		return errors.New("fit: --in and --out are required")
+	}
+	if c.category == "" {
+		c.category = strings.TrimSuffix(filepath.Base(c.in), filepath.Ext(c.in))
+	}
+	gc := def
+	gc.Sweeps, gc.Burn, gc.Thin = c.sweeps, c.burn, c.thin
+	if err := gc.Validate(); err != nil {
+		return fmt.Errorf("fit: %w", err)
+	}
+	if !(c.threshold > 0) || math.IsInf(c.threshold, 0) {
+		return fmt.Errorf("fit: --threshold %v, want finite and > 0", c.threshold)
+	}
+
+	cat, err := readCategory(c.in, c.competitors, c.strict, stderr)
+	if err != nil {
+		return fmt.Errorf("fit: %w", err)
+	}
+	if len(cat.ids) == 0 {
+		return fmt.Errorf("fit: %s holds no product data", c.in)
+	}
+
+	src := rand.New(rand.NewPCG(c.seed, 0x5eed))
+	g, err := sequential.NewGibbs(cat.data, gc, src)
+	if err != nil {
+		return fmt.Errorf("fit: %w", err)
+	}
+	start := time.Now()
+	last := start
+	progress := func(sweep, total, segments int) {
+		if c.quiet || ctx.Err() != nil {
+			return
+		}
+		if now := time.Now(); sweep == total || now.Sub(last) >= time.Second {
+			last = now
+			fmt.Fprintf(stderr, "sampling: sweep %d/%d, %d segments, %.1fs\n", sweep, total, segments, now.Sub(start).Seconds())
+		}
+	}
+	draws := g.Run(src, progress)
+	if err := ctx.Err(); err != nil {
+		return err
+	}
+
+	opt := sequential.DefaultSummaryOptions()
+	opt.Threshold = c.threshold
+	opt.Prior = gc.Prior
+	sum, err := sequential.Summarize(draws, cat.data, opt)
+	if err != nil {
+		return fmt.Errorf("fit: summarise: %w", err)
+	}
+	post := newPosteriorFile(c.category, cat.ids, cat.data, draws, sum, c.similarity)
+	if err := writeJSON(c.out, post); err != nil {
+		return fmt.Errorf("fit: %w", err)
+	}
+	printSegmentTable(stdout, cat.data, sum)
+	fmt.Fprintf(stdout, "\n%d products, %d lines skipped, %d non-positive entries dropped; %d draws; expected Binder loss %.1f; wrote %s\n",
+		len(cat.ids), cat.badLines, cat.dropped, len(draws), sum.Binder, c.out)
+	return nil
+}
+
+// categoryData is one category's latest datum per product, in order of
+// first appearance.
+type categoryData struct {
+	ids      []string
+	data     []*sequential.Datum
+	badLines int
+	dropped  int
+}
+
+// readCategory decodes a JSON-lines file. A later message for the same
+// product replaces the earlier one (a newer refit); a withdrawn product is
+// removed. Bad lines are reported on stderr and counted, or abort in strict
+// mode.
+func readCategory(path string, defaultL int, strict bool, stderr io.Writer) (*categoryData, error) {
+	f, err := os.Open(path)
+	if err != nil {
+		return nil, err
+	}
+	defer f.Close()
+	opt := stream.DefaultDecodeOptions()
+	opt.DefaultCompetitors = defaultL
+	opt.Strict = strict
+	latest := map[string]stream.Message{}
+	var order []string
+	cat := &categoryData{}
+	err = stream.DecodeLines(f, opt, func(line int, m stream.Message) error {
+		switch m.Kind {
+		case stream.KindDatum:
+			if _, ok := latest[m.Product]; !ok {
+				order = append(order, m.Product)
+			}
+			latest[m.Product] = m
+		case stream.KindWithdrawn:
+			delete(latest, m.Product)
+		}
+		return nil
+	}, func(le *stream.LineError) error {
+		cat.badLines++
+		if strict {
+			return fmt.Errorf("%s: %w", path, le)
+		}
+		if cat.badLines <= 10 {
+			fmt.Fprintf(stderr, "skipped %s: %v\n", path, le)
+		}
+		return nil
+	})
+	if err != nil {
+		return nil, err
+	}
+	if cat.badLines > 10 {
+		fmt.Fprintf(stderr, "skipped %d bad lines in all\n", cat.badLines)
+	}
+	for _, id := range order {
+		m, ok := latest[id]
+		if !ok {
+			continue
+		}
+		d, err := sequential.NewDatum(m.Relative, m.Competitors)
+		if err != nil {
+			return nil, fmt.Errorf("product %s: %w", id, err)
+		}
+		cat.ids = append(cat.ids, id)
+		cat.data = append(cat.data, &d)
+		cat.dropped += len(m.Dropped)
+	}
+	return cat, nil
+}
+
+// posteriorFile is the JSON written by fit; its field set is a contract
+// with other tools.
+type posteriorFile struct {
+	Category    string               `json:"category"`
+	Products    []string             `json:"products"`
+	Segments    map[string]string    `json:"segments"`
+	NumSegments map[string]float64   `json:"num_segments"`
+	AlphaMean   float64              `json:"alpha_mean"`
+	Similarity  [][]float64          `json:"similarity,omitempty"`
+	NextValue   map[string]nextValue `json:"next_value"`
+}
+
+type nextValue struct {
+	Threshold float64 `json:"threshold"`
+	PExceed   float64 `json:"p_exceed"`
+	Median    float64 `json:"median"`
+	Lo        float64 `json:"lo"`
+	Hi        float64 `json:"hi"`
+}
+
+// segmentLabel names point segment c (0-based) for people: S1, S2, ...
+func segmentLabel(c int) string { return "S" + strconv.Itoa(c+1) }
+
+func newPosteriorFile(category string, ids []string, data []*sequential.Datum, draws []sequential.Draw, sum sequential.Summary, similarity bool) posteriorFile {
+	p := posteriorFile{
+		Category:    category,
+		Products:    ids,
+		Segments:    make(map[string]string, len(ids)),
+		NumSegments: make(map[string]float64, len(sum.NumSegments)),
+		AlphaMean:   sum.AlphaMean,
+		NextValue:   make(map[string]nextValue),
+	}
+	for i, id := range ids {
+		p.Segments[id] = segmentLabel(sum.Partition[i])
+		if nv := sum.Next[i]; nv.Defined {
+			p.NextValue[id] = nextValue{Threshold: nv.Threshold, PExceed: nv.PExceed, Median: nv.Median, Lo: nv.Lo, Hi: nv.Hi}
+		}
+	}
+	for k, pr := range sum.NumSegments {
+		p.NumSegments[strconv.Itoa(k)] = pr
+	}
+	if similarity {
+		p.Similarity = sequential.SimilarityMatrix(draws)
+	}
+	return p
+}
+
+func writeJSON(path string, v any) error {
+	b, err := json.MarshalIndent(v, "", " ")
+	if err != nil {
+		return err
+	}
+	tmp := path + ".tmp"
+	if err := os.WriteFile(tmp, append(b, '\n'), 0o644); err != nil {
+		return err
+	}
+	return os.Rename(tmp, path)
+}
+
+// printSegmentTable prints one row per point segment.
+func printSegmentTable(w io.Writer, data []*sequential.Datum, sum sequential.Summary) {
+	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
+	fmt.Fprintf(tw, "segment\tsize\tmedian 1st\tmedian 2nd\tmedian 3rd\tmean reported\tmissed competitor\t\n")
+	for c, s := range sum.Segments {
+		missed := 0
+		for _, i := range s.Members {
+			if nv := sum.Next[i]; nv.Defined && nv.PExceed >= 0.5 {
+				missed++
+			}
+		}
+		fmt.Fprintf(tw, "%s\t%d\t%s\t%s\t%s\t%.2f\t%.0f%%\t\n", segmentLabel(c), len(s.Members),
+			fmtMedian(s.Median[0]), fmtMedian(s.Median[1]), fmtMedian(s.Median[2]), s.MeanReported,
+			100*float64(missed)/float64(len(s.Members)))
+	}
+	tw.Flush()
+	ks := make([]int, 0, len(sum.NumSegments))
+	for k := range sum.NumSegments {
+		ks = append(ks, k)
+	}
+	sort.Ints(ks)
+	fmt.Fprintf(w, "\nposterior of the number of segments:")
+	for _, k := range ks {
+		if sum.NumSegments[k] >= 0.005 {
+			fmt.Fprintf(w, "  K=%d: %.2f", k, sum.NumSegments[k])
+		}
+	}
+	fmt.Fprintf(w, "\nalpha (posterior mean): %.3f\n", sum.AlphaMean)
+}
+
+func fmtMedian(v float64) string {
+	if math.IsNaN(v) {
+		return "-"
+	}
+	return strconv.FormatFloat(v, 'f', 3, 64)
+}

@@ -1,0 +1,83 @@
+// Package sequential holds the statistics of rivalmix: the exponentiated
+// Weibull kernel, the likelihood of one product's top-k relative
+// cross-elasticities, the batch Gibbs sampler, the sequential Monte Carlo
+// updater, posterior summaries and the binary encoding of the updater's
+// state. It does no I/O, reads no clock and keeps no globals: all
+// randomness comes from generators the caller seeds.
+//
+// # Model
+//
+// A product's datum is the top n of L latent values, descending. Given its
+// segment theta = (a, k, s, p) the count is Binomial(L, p) and the values
+// are the top n order statistics of L iid ExpWeibull(a, k, s) draws. The
+// segments follow a Dirichlet process with concentration alpha. p has a
+// conjugate Beta prior and is integrated out everywhere: a segment carries
+// only its kernel and its count totals A = sum n_j, B = sum (L_j - n_j),
+// and a datum's count term given the other members is beta-binomial.
+//
+// # Batch sampler
+//
+// Gibbs runs Algorithm 8 of Neal (2000) with m auxiliary segments drawn
+// from the base measure, univariate slice sampling (Neal 2003) of log a,
+// log k and log s per segment, and the Escobar-West (1995) update of
+// alpha. For fixed k and s the value likelihood of a segment is linear in a
+// and log a, so the log a update costs one pass over the members.
+//
+// # Sequential updater: weights
+//
+// Particles carries P weighted States. Write f_c(y) for the likelihood of
+// datum y in segment c (value part under theta_c times the beta-binomial
+// count term given c's other members), N for the number of products
+// before the change, and, for m auxiliary thetas phi_1..phi_m drawn from
+// the base measure,
+//
+//	Z(y) = sum_c n_c f_c(y) + (alpha/m) sum_j f_phi_j(y).
+//
+// Add. The proposal draws the auxiliaries, then puts the new product in
+// segment c with probability n_c f_c(y)/Z or in a new segment with theta
+// phi_j with probability (alpha/m) f_phi_j(y)/Z. Extend the new target
+// with the auxiliaries (iid base-measure draws, except that a new
+// segment's theta sits in a uniformly chosen slot). The new target times
+// that extension, divided by the old target times the proposal, is
+// Z/(N + alpha) whichever choice was made: the Chinese-restaurant prior
+// n_c/(N+alpha) or alpha/(N+alpha) times the likelihood cancels against
+// the proposal's numerator, and the base-measure densities cancel. The
+// weight is therefore exact on the extended space, and discarding the
+// auxiliaries leaves the right marginal.
+//
+// Remove. Removing a product is a deterministic map; take as backward
+// kernel the Algorithm-8 conditional that would put it back, with the
+// product's own theta as the first auxiliary when it was alone. The same
+// cancellation gives the weight (N - 1 + alpha)/Z, with Z computed
+// without the product.
+//
+// Replace (a refit) is a Remove followed by an Add of the new datum, so
+// its weight is Z(others, new)/Z(others, old), and the assignment is drawn
+// afresh. We prefer this to keeping the assignment with weight
+// f(new)/f(old): when a product really moves, f(new)/f(old) is tiny in
+// every particle and the weights collapse, whereas the redraw puts the
+// product where its new datum fits and only the predictive ratio enters.
+//
+// The log of the weighted mean of the incremental weights is the log
+// predictive density of the change (for an Add, of the datum given the
+// data already present); it is returned as the datum's surprise, and the
+// running sum estimates the log evidence.
+//
+// # Sequential updater: degeneracy control
+//
+// After every operation the effective sample size 1/sum W^2 is checked;
+// below ESSFraction*P the particles are resampled (systematic, or residual)
+// and the products touched since the last settle are reassigned in every
+// particle, so copies diverge. Settle resamples if needed and runs the
+// rejuvenation budget: Sweeps passes, each reassigning the touched
+// products and a random share of the others (Algorithm 8), slice-updating
+// every occupied segment's kernel and updating alpha. Each move leaves the
+// current posterior invariant. Diversity counts distinct ancestors since
+// the start, which shows path degeneracy.
+//
+// Every particle draws from its own stream, seeded for each operation from
+// the one master generator and the particle's index, so results depend on
+// neither the number of workers nor scheduling. Assignments are uint16
+// labels (2 bytes per particle per product), shared between copies after
+// resampling until one of them writes.
+package sequential

@@ -1,0 +1,373 @@
+package sequential
+
+import (
+	"encoding/binary"
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+)
+
+// encodingVersion is the first byte of every encoded particle system.
+// Version 1 layout (little-endian; strings and byte blobs length-prefixed
+// with a uvarint; counts are uvarints, floats are IEEE-754 bits):
+//
+//	version byte
+//	config: aux, particles, ess fraction, resampler, sweeps, random share
+//	prior: count a, count b, (mu, sigma) of log a, log k, log s, alpha shape, alpha rate
+//	master generator (PCG MarshalBinary blob), log evidence
+//	slots: count, then per slot a presence byte and, if present, id, L, n, n values
+//	free slots, touched slots
+//	label buffers: count, then per buffer its length and uint16 labels
+//	particles: count, then per particle log weight, origin, alpha, label
+//	  buffer index, segment count, per segment log a, log k, log s, size,
+//	  reported, considered, then its free-segment list
+const encodingVersion = 1
+
+// ErrEncoding reports a particle-system encoding that cannot be decoded.
+var ErrEncoding = errors.New("sequential: bad particle-system encoding")
+
+type encoder struct{ b []byte }
+
+func (e *encoder) u(v uint64)  { e.b = binary.AppendUvarint(e.b, v) }
+func (e *encoder) i(v int)     { e.u(uint64(v)) }
+func (e *encoder) f(v float64) { e.b = binary.LittleEndian.AppendUint64(e.b, math.Float64bits(v)) }
+func (e *encoder) s(v string)  { e.i(len(v)); e.b = append(e.b, v...) }
+func (e *encoder) blob(v []byte) {
+	e.i(len(v))
+	e.b = append(e.b, v...)
+}
+
+// Encode returns the whole particle system, including the random
+// generator's state, as bytes: Decode of the result continues exactly as
+// the system would have. The Workers setting is not stored.
+func (ps *Particles) Encode() []byte {
+	e := &encoder{b: make([]byte, 0, 1024+len(ps.parts)*(len(ps.slots)*2+64))}
+	e.b = append(e.b, encodingVersion)
+	c := ps.cfg
+	e.i(c.Aux)
+	e.i(c.Particles)
+	e.f(c.ESSFraction)
+	e.i(int(c.Resampler))
+	e.i(c.Sweeps)
+	e.f(c.RandomShare)
+	pr := ps.prior
+	for _, v := range []float64{pr.CountA, pr.CountB, pr.LogA.Mu, pr.LogA.Sigma, pr.LogK.Mu, pr.LogK.Sigma,
+		pr.LogS.Mu, pr.LogS.Sigma, pr.AlphaShape, pr.AlphaRate} {
+		e.f(v)
+	}
+	m, err := ps.master.MarshalBinary()
+	if err != nil {
+		panic("sequential: PCG marshal: " + err.Error()) // PCG never fails
+	}
+	e.blob(m)
+	e.f(ps.logEvidence)
+	e.i(len(ps.slots))
+	for s, d := range ps.slots {
+		if d == nil {
+			e.b = append(e.b, 0)
+			continue
+		}
+		e.b = append(e.b, 1)
+		e.s(ps.ids[s])
+		e.i(d.L())
+		e.i(d.N())
+		for _, v := range d.values {
+			e.f(v)
+		}
+	}
+	e.i(len(ps.free))
+	for _, s := range ps.free {
+		e.i(s)
+	}
+	e.i(len(ps.touched))
+	for _, s := range ps.touched {
+		e.i(s)
+	}
+	// Label buffers shared by several particles are written once.
+	bufIndex := map[*labelBuf]int{}
+	var bufs []*labelBuf
+	for _, st := range ps.parts {
+		if _, ok := bufIndex[st.labels]; !ok {
+			bufIndex[st.labels] = len(bufs)
+			bufs = append(bufs, st.labels)
+		}
+	}
+	e.i(len(bufs))
+	for _, lb := range bufs {
+		e.i(len(lb.l))
+		for _, v := range lb.l {
+			e.b = binary.LittleEndian.AppendUint16(e.b, v)
+		}
+	}
+	e.i(len(ps.parts))
+	for p, st := range ps.parts {
+		e.f(ps.logw[p])
+		e.i(ps.origin[p])
+		e.f(st.alpha)
+		e.i(bufIndex[st.labels])
+		e.i(len(st.segs))
+		for _, g := range st.segs {
+			e.f(g.theta.LogA)
+			e.f(g.theta.LogK)
+			e.f(g.theta.LogS)
+			e.i(g.size)
+			e.i(g.reported)
+			e.i(g.considered)
+		}
+		e.i(len(st.free))
+		for _, c := range st.free {
+			e.i(int(c))
+		}
+	}
+	return e.b
+}
+
+type decoder struct {
+	b   []byte
+	err error
+}
+
+func (d *decoder) fail(what string) {
+	if d.err == nil {
+		d.err = fmt.Errorf("%w: truncated or corrupt at %s", ErrEncoding, what)
+	}
+}
+
+func (d *decoder) u(what string) uint64 {
+	if d.err != nil {
+		return 0
+	}
+	v, n := binary.Uvarint(d.b)
+	if n <= 0 {
+		d.fail(what)
+		return 0
+	}
+	d.b = d.b[n:]
+	return v
+}
+
+// i reads a count no larger than limit.
+func (d *decoder) i(what string, limit int) int {
+	v := d.u(what)
+	if v > uint64(limit) {
+		d.fail(what)
+		return 0
+	}
+	return int(v)
+}
+
+func (d *decoder) f(what string) float64 {
+	if d.err != nil {
+		return 0
+	}
+	if len(d.b) < 8 {
+		d.fail(what)
+		return 0
+	}
+	v := math.Float64frombits(binary.LittleEndian.Uint64(d.b))
+	d.b = d.b[8:]
+	return v
+}
+
+func (d *decoder) bytes(what string) []byte {
+	n := d.i(what, len(d.b))
+	if d.err != nil {
+		return nil
+	}
+	v := d.b[:n]
+	d.b = d.b[n:]
+	return v
+}
+
+// DecodeParticles rebuilds a particle system from Encode's bytes; workers
+// sets the goroutines used from then on (0 = GOMAXPROCS). Errors wrap
+// ErrEncoding.
+func DecodeParticles(b []byte, workers int) (*Particles, error) {
+	if len(b) == 0 || b[0] != encodingVersion {
+		if len(b) == 0 {
+			return nil, fmt.Errorf("%w: empty", ErrEncoding)
+		}
+		return nil, fmt.Errorf("%w: version %d, want %d", ErrEncoding, b[0], encodingVersion)
+	}
+	d := &decoder{b: b[1:]}
+	const big = 1 << 30
+	var c ParticleConfig
+	c.Aux = d.i("aux", 1<<16)
+	c.Particles = d.i("particles", 1<<16)
+	c.ESSFraction = d.f("ess fraction")
+	c.Resampler = Resampler(d.i("resampler", 16))
+	c.Sweeps = d.i("sweeps", big)
+	c.RandomShare = d.f("random share")
+	c.Workers = workers
+	pr := &c.Prior
+	for _, p := range []*float64{&pr.CountA, &pr.CountB, &pr.LogA.Mu, &pr.LogA.Sigma, &pr.LogK.Mu, &pr.LogK.Sigma,
+		&pr.LogS.Mu, &pr.LogS.Sigma, &pr.AlphaShape, &pr.AlphaRate} {
+		*p = d.f("prior")
+	}
+	if d.err != nil {
+		return nil, d.err
+	}
+	if err := c.Validate(); err != nil {
+		return nil, fmt.Errorf("%w: %w", ErrEncoding, err)
+	}
+	ps := &Particles{cfg: c, prior: c.Prior, index: map[string]int{}}
+	ps.master = rand.NewPCG(0, 0)
+	if err := ps.master.UnmarshalBinary(d.bytes("generator")); err != nil && d.err == nil {
+		return nil, fmt.Errorf("%w: generator: %w", ErrEncoding, err)
+	}
+	ps.logEvidence = d.f("log evidence")
+	nslots := d.i("slots", big)
+	if d.err != nil {
+		return nil, d.err
+	}
+	ps.slots = make([]*Datum, nslots)
+	ps.ids = make([]string, nslots)
+	ps.isTouch = make([]bool, nslots)
+	for s := 0; s < nslots && d.err == nil; s++ {
+		if len(d.b) == 0 {
+			d.fail("slot")
+			break
+		}
+		present := d.b[0]
+		d.b = d.b[1:]
+		if present == 0 {
+			continue
+		}
+		id := string(d.bytes("product id"))
+		l := d.i("competitors", MaxCompetitors)
+		n := d.i("count", l)
+		vals := make([]float64, n)
+		for j := range vals {
+			vals[j] = d.f("value")
+		}
+		if d.err != nil {
+			break
+		}
+		dt, err := NewDatum(vals, l)
+		if err != nil {
+			return nil, fmt.Errorf("%w: product %q: %w", ErrEncoding, id, err)
+		}
+		if _, dup := ps.index[id]; dup {
+			return nil, fmt.Errorf("%w: product %q twice", ErrEncoding, id)
+		}
+		ps.slots[s] = &dt
+		ps.ids[s] = id
+		ps.index[id] = s
+		ps.n++
+	}
+	ps.free = make([]int, d.i("free slots", nslots))
+	for j := range ps.free {
+		ps.free[j] = d.i("free slot", nslots-1)
+	}
+	ps.touched = make([]int, d.i("touched", nslots))
+	for j := range ps.touched {
+		s := d.i("touched slot", nslots-1)
+		ps.touched[j] = s
+		ps.isTouch[s] = true
+	}
+	bufs := make([]*labelBuf, d.i("label buffers", c.Particles))
+	for j := range bufs {
+		n := d.i("labels", nslots)
+		if d.err != nil || len(d.b) < 2*n {
+			d.fail("labels")
+			break
+		}
+		lb := &labelBuf{l: make([]uint16, n)}
+		for k := range lb.l {
+			lb.l[k] = binary.LittleEndian.Uint16(d.b[2*k:])
+		}
+		d.b = d.b[2*n:]
+		bufs[j] = lb
+	}
+	P := d.i("particles", c.Particles)
+	if d.err != nil {
+		return nil, d.err
+	}
+	if P != c.Particles {
+		return nil, fmt.Errorf("%w: %d particles stored, config says %d", ErrEncoding, P, c.Particles)
+	}
+	ps.parts = make([]*State, P)
+	ps.logw = make([]float64, P)
+	ps.origin = make([]int, P)
+	for p := 0; p < P && d.err == nil; p++ {
+		ps.logw[p] = d.f("log weight")
+		ps.origin[p] = d.i("origin", P-1)
+		st := &State{data: ps.slots, prior: &ps.prior, m: c.Aux, n: ps.n}
+		st.alpha = d.f("alpha")
+		bi := d.i("label buffer index", len(bufs)-1)
+		if d.err != nil {
+			break
+		}
+		st.labels = bufs[bi]
+		st.labels.refs.Add(1)
+		st.segs = make([]segment, d.i("segments", MaxSegments))
+		for k := range st.segs {
+			t := Theta{LogA: d.f("log a"), LogK: d.f("log k"), LogS: d.f("log s")}
+			st.segs[k].setTheta(t)
+			st.segs[k].size = d.i("size", nslots)
+			st.segs[k].reported = d.i("reported", big)
+			st.segs[k].considered = d.i("considered", big)
+		}
+		st.free = make([]uint16, d.i("free segments", len(st.segs)))
+		for k := range st.free {
+			st.free[k] = uint16(d.i("free segment", len(st.segs)-1))
+		}
+		ps.parts[p] = st
+	}
+	if d.err != nil {
+		return nil, d.err
+	}
+	if len(d.b) != 0 {
+		return nil, fmt.Errorf("%w: %d trailing bytes", ErrEncoding, len(d.b))
+	}
+	if err := ps.check(); err != nil {
+		return nil, fmt.Errorf("%w: %w", ErrEncoding, err)
+	}
+	ps.initScratch()
+	return ps, nil
+}
+
+// check verifies that every particle's labels and segment totals agree
+// with the data: the invariant every operation keeps.
+func (ps *Particles) check() error {
+	for p, st := range ps.parts {
+		if len(st.labels.l) != len(ps.slots) {
+			return fmt.Errorf("particle %d: %d labels for %d slots", p, len(st.labels.l), len(ps.slots))
+		}
+		size := make([]int, len(st.segs))
+		rep := make([]int, len(st.segs))
+		con := make([]int, len(st.segs))
+		for s, c := range st.labels.l {
+			d := ps.slots[s]
+			if (d == nil) != (c == Absent) {
+				return fmt.Errorf("particle %d: slot %d presence and label disagree", p, s)
+			}
+			if d == nil {
+				continue
+			}
+			if int(c) >= len(st.segs) {
+				return fmt.Errorf("particle %d: slot %d label %d out of range", p, s, c)
+			}
+			size[c]++
+			rep[c] += d.N()
+			con[c] += d.L()
+		}
+		empty := 0
+		for c, g := range st.segs {
+			if g.size != size[c] || g.reported != rep[c] || g.considered != con[c] {
+				return fmt.Errorf("particle %d: segment %d totals disagree with its members", p, c)
+			}
+			if g.size == 0 {
+				empty++
+			}
+		}
+		if empty != len(st.free) {
+			return fmt.Errorf("particle %d: %d empty segments but %d on the free list", p, empty, len(st.free))
+		}
+		if !(st.alpha > 0) {
+			return fmt.Errorf("particle %d: alpha %v", p, st.alpha)
+		}
+	}
+	return nil
+}

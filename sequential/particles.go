@@ -1,0 +1,616 @@
+package sequential
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"math/rand/v2"
+	"runtime"
+	"sort"
+	"sync"
+)
+
+// Resampler names a resampling scheme.
+type Resampler int
+
+const (
+	// Systematic resampling: one uniform, P evenly spaced points.
+	Systematic Resampler = iota
+	// Residual resampling: floor(P w) copies each, the rest multinomially.
+	Residual
+)
+
+// String returns the scheme's name as used in settings.
+func (r Resampler) String() string {
+	switch r {
+	case Systematic:
+		return "systematic"
+	case Residual:
+		return "residual"
+	}
+	return fmt.Sprintf("Resampler(%d)", int(r))
+}
+
+// ParseResampler maps "systematic" or "residual" to a Resampler.
+func ParseResampler(s string) (Resampler, error) {
+	switch s {
+	case "systematic":
+		return Systematic, nil
+	case "residual":
+		return Residual, nil
+	}
+	return 0, fmt.Errorf("%w: resampler %q, want systematic or residual", ErrConfig, s)
+}
+
+// ParticleConfig sets up the sequential updater.
+type ParticleConfig struct {
+	Prior Prior
+	// Aux is the number m of auxiliary segments per placement (Algorithm 8).
+	Aux int
+	// Particles is P, the number of particles.
+	Particles int
+	// ESSFraction triggers resampling when the effective sample size
+	// falls below ESSFraction * P; in (0, 1].
+	ESSFraction float64
+	Resampler   Resampler
+	// Sweeps is the number of rejuvenation passes at a settle; each pass
+	// reassigns the products touched since the last settle plus a random
+	// RandomShare of the others, then refreshes every occupied segment's
+	// kernel and alpha.
+	Sweeps      int
+	RandomShare float64
+	// Workers is the number of goroutines over particles; 0 means
+	// GOMAXPROCS. Results do not depend on it.
+	Workers int
+}
+
+// DefaultParticleConfig returns P = 256, m = 3, resampling below P/2 with
+// the systematic scheme, and 2 rejuvenation sweeps over the touched
+// products plus 10% of the rest.
+func DefaultParticleConfig() ParticleConfig {
+	return ParticleConfig{Prior: DefaultPrior(), Aux: 3, Particles: 256, ESSFraction: 0.5,
+		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1}
+}
+
+// Validate reports the first setting out of range.
+func (c ParticleConfig) Validate() error {
+	if err := c.Prior.Validate(); err != nil {
+		return err
+	}
+	switch {
+	case c.Aux < 1:
+		return fmt.Errorf("%w: aux = %d, want >= 1", ErrConfig, c.Aux)
+	case c.Particles < 1 || c.Particles > 1<<16:
+		return fmt.Errorf("%w: particles = %d, want 1..65536", ErrConfig, c.Particles)
+	case !(c.ESSFraction > 0 && c.ESSFraction <= 1):
+		return fmt.Errorf("%w: ess fraction = %v, want in (0, 1]", ErrConfig, c.ESSFraction)
+	case c.Resampler != Systematic && c.Resampler != Residual:
+		return fmt.Errorf("%w: resampler %d unknown", ErrConfig, int(c.Resampler))
+	case c.Sweeps < 0:
+		return fmt.Errorf("%w: sweeps = %d, want >= 0", ErrConfig, c.Sweeps)
+	case !(c.RandomShare >= 0 && c.RandomShare <= 1):
+		return fmt.Errorf("%w: random share = %v, want in [0, 1]", ErrConfig, c.RandomShare)
+	case c.Workers < 0:
+		return fmt.Errorf("%w: workers = %d, want >= 0", ErrConfig, c.Workers)
+	}
+	return nil
+}
+
+// Sentinel errors of the particle system's operations.
+var (
+	ErrUnknownProduct = errors.New("sequential: unknown product")
+	ErrDuplicate      = errors.New("sequential: product already present")
+)
+
+// Particles is the sequential Monte Carlo updater (see the package doc for
+// the derivation of its weights). It holds P weighted States over shared
+// product slots. Every operation is deterministic given the seed and the
+// sequence of operations, whatever Workers is. Not safe for concurrent use.
+type Particles struct {
+	cfg   ParticleConfig
+	prior Prior
+
+	master *rand.PCG // the one seeded generator; its state is saved
+	slots  []*Datum  // product data by slot; nil when free
+	ids    []string  // product id by slot; "" when free
+	index  map[string]int
+	free   []int // free slots, reused last-in first-out
+	n      int   // products present
+
+	parts   []*State
+	logw    []float64
+	origin  []int // index of each particle's ancestor at the last reset
+	touched []int // slots changed since the last settle, in order
+	isTouch []bool
+
+	logEvidence float64 // running sum of log normalised incremental weights
+
+	// per-operation scratch, not part of the state
+	streams []*rand.Rand
+	pcgs    []*rand.PCG
+	incr    []float64
+}
+
+// NewParticles returns an empty particle system: P particles with no
+// products and alpha drawn from its prior, seeded by (seed1, seed2).
+func NewParticles(cfg ParticleConfig, seed1, seed2 uint64) (*Particles, error) {
+	if err := cfg.Validate(); err != nil {
+		return nil, err
+	}
+	ps := &Particles{cfg: cfg, prior: cfg.Prior, master: rand.NewPCG(seed1, seed2), index: map[string]int{}}
+	src := rand.New(ps.master)
+	ps.parts = make([]*State, cfg.Particles)
+	ps.logw = make([]float64, cfg.Particles)
+	ps.origin = make([]int, cfg.Particles)
+	for p := range ps.parts {
+		ps.parts[p] = newState(&ps.prior, cfg.Aux, 0, ps.prior.DrawAlpha(src))
+		ps.origin[p] = p
+	}
+	ps.initScratch()
+	return ps, nil
+}
+
+func (ps *Particles) initScratch() {
+	P := len(ps.parts)
+	ps.pcgs = make([]*rand.PCG, P)
+	ps.streams = make([]*rand.Rand, P)
+	for p := range ps.pcgs {
+		ps.pcgs[p] = rand.NewPCG(0, 0)
+		ps.streams[p] = rand.New(ps.pcgs[p])
+	}
+	ps.incr = make([]float64, P)
+}
+
+// Len returns the number of products present.
+func (ps *Particles) Len() int { return ps.n }
+
+// NumParticles returns P.
+func (ps *Particles) NumParticles() int { return len(ps.parts) }
+
+// Has reports whether product id is present.
+func (ps *Particles) Has(id string) bool { _, ok := ps.index[id]; return ok }
+
+// Products returns the ids of the present products in slot order, the
+// order used by Settle's summaries.
+func (ps *Particles) Products() []string {
+	out := make([]string, 0, ps.n)
+	for s, id := range ps.ids {
+		if ps.slots[s] != nil {
+			out = append(out, id)
+		}
+	}
+	return out
+}
+
+// LogEvidence returns the running estimate of the log marginal likelihood
+// of the data present now (the sum of the log normalised incremental
+// weights of every operation so far).
+func (ps *Particles) LogEvidence() float64 { return ps.logEvidence }
+
+// reseed points every particle's stream at a fresh key from the master
+// generator: particle p's stream depends only on the master state and p,
+// never on which goroutine runs it.
+func (ps *Particles) reseed() {
+	k1, k2 := ps.master.Uint64(), ps.master.Uint64()
+	for p, g := range ps.pcgs {
+		g.Seed(k1, k2^(uint64(p)+1)*0x9e3779b97f4a7c15)
+	}
+}
+
+// forEach runs f for every particle over the configured workers and
+// waits. f must touch only particle p's state and ps.incr[p].
+func (ps *Particles) forEach(f func(p int, st *State, src *rand.Rand)) {
+	ps.reseed()
+	w := ps.cfg.Workers
+	if w == 0 {
+		w = runtime.GOMAXPROCS(0)
+	}
+	P := len(ps.parts)
+	w = min(w, P)
+	if w <= 1 {
+		for p, st := range ps.parts {
+			f(p, st, ps.streams[p])
+		}
+		return
+	}
+	var wg sync.WaitGroup
+	chunk := (P + w - 1) / w
+	for lo := 0; lo < P; lo += chunk {
+		hi := min(lo+chunk, P)
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			for p := lo; p < hi; p++ {
+				f(p, ps.parts[p], ps.streams[p])
+			}
+		}()
+	}
+	wg.Wait()
+}
+
+// applyIncrements adds incr to the log weights and returns the log of
+// the weighted mean of exp(incr) under the weights before the update: the
+// log of the ratio of the new target's normalising constant to the old
+// one's (for an Add, the log predictive density of the datum). The
+// running evidence estimate moves by the same amount.
+func (ps *Particles) applyIncrements(incr []float64) float64 {
+	mw := maxOf(ps.logw)
+	m := math.Inf(-1)
+	for p := range ps.logw {
+		m = math.Max(m, ps.logw[p]-mw+incr[p])
+	}
+	var num, den float64
+	for p := range ps.logw {
+		a := ps.logw[p] - mw
+		den += math.Exp(a)
+		num += math.Exp(a + incr[p] - m)
+		ps.logw[p] += incr[p]
+	}
+	// Keep weights near 0 so they never overflow.
+	mw2 := maxOf(ps.logw)
+	for p := range ps.logw {
+		ps.logw[p] -= mw2
+	}
+	lp := m + math.Log(num) - math.Log(den)
+	ps.logEvidence += lp
+	return lp
+}
+
+func maxOf(x []float64) float64 {
+	m := math.Inf(-1)
+	for _, v := range x {
+		m = math.Max(m, v)
+	}
+	return m
+}
+
+func (ps *Particles) markTouched(slot int) {
+	if !ps.isTouch[slot] {
+		ps.isTouch[slot] = true
+		ps.touched = append(ps.touched, slot)
+	}
+}
+
+// newSlot allocates a slot for id.
+func (ps *Particles) newSlot(id string, d *Datum) int {
+	var s int
+	if k := len(ps.free); k > 0 {
+		s = ps.free[k-1]
+		ps.free = ps.free[:k-1]
+	} else {
+		s = len(ps.slots)
+		ps.slots = append(ps.slots, nil)
+		ps.ids = append(ps.ids, "")
+		ps.isTouch = append(ps.isTouch, false)
+		for _, st := range ps.parts {
+			st.growSlots(len(ps.slots))
+		}
+	}
+	for _, st := range ps.parts {
+		st.data = ps.slots
+	}
+	ps.slots[s] = d
+	ps.ids[s] = id
+	ps.index[id] = s
+	return s
+}
+
+// growSlots extends the label storage to n slots (new slots absent).
+func (s *State) growSlots(n int) {
+	old := s.labels.l
+	if len(old) >= n {
+		return
+	}
+	if s.labels.refs.Load() == 1 && cap(old) >= n {
+		s.labels.l = old[:n]
+		for i := len(old); i < n; i++ {
+			s.labels.l[i] = Absent
+		}
+		return
+	}
+	l := make([]uint16, n, max(2*n, 64))
+	copy(l, old)
+	for i := len(old); i < n; i++ {
+		l[i] = Absent
+	}
+	nb := &labelBuf{l: l}
+	nb.refs.Store(1)
+	s.labels.refs.Add(-1)
+	s.labels = nb
+}
+
+// Add brings product id with datum d into every particle by the Algorithm-8
+// proposal; the incremental weight is Z / (N + alpha) (package doc). It
+// returns the log predictive density of d given the data already present.
+func (ps *Particles) Add(id string, d Datum) (float64, error) {
+	if _, ok := ps.index[id]; ok {
+		return 0, fmt.Errorf("%w: %q", ErrDuplicate, id)
+	}
+	dp := &d
+	slot := ps.newSlot(id, dp)
+	nPrev := float64(ps.n)
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		st.drawAux(nil, src)
+		logZ := st.predictiveTerms(dp)
+		ps.incr[p] = logZ - math.Log(nPrev+st.alpha)
+		st.place(slot, dp, logZ, src)
+		st.n++
+	})
+	ps.n++
+	ps.markTouched(slot)
+	lp := ps.applyIncrements(ps.incr)
+	ps.maybeResample()
+	return lp, nil
+}
+
+// Replace swaps product id's datum for d (a refit): in each particle the
+// product leaves its segment and is placed again by the Algorithm-8
+// proposal, with incremental weight Z(others, new) / Z(others, old). It
+// returns the log predictive density of d given the other products.
+func (ps *Particles) Replace(id string, d Datum) (float64, error) {
+	slot, ok := ps.index[id]
+	if !ok {
+		return 0, fmt.Errorf("%w: %q", ErrUnknownProduct, id)
+	}
+	old := ps.slots[slot]
+	dp := &d
+	nOthers := float64(ps.n - 1)
+	// Split the increment in two so that the predictive of the new datum
+	// is reported against the weights with the old datum removed.
+	rem := make([]float64, len(ps.parts))
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		st.detach(slot, old, src)
+		logZOld := st.predictiveTerms(old)
+		rem[p] = math.Log(nOthers+st.alpha) - logZOld
+		st.drawAux(nil, src)
+		logZNew := st.predictiveTerms(dp)
+		ps.incr[p] = logZNew - math.Log(nOthers+st.alpha)
+		st.place(slot, dp, logZNew, src)
+	})
+	ps.applyIncrements(rem)
+	ps.slots[slot] = dp
+	lp := ps.applyIncrements(ps.incr)
+	ps.markTouched(slot)
+	ps.maybeResample()
+	return lp, nil
+}
+
+// Remove takes product id out of every particle (a delisting), with
+// incremental weight (N - 1 + alpha) / Z(others, datum).
+func (ps *Particles) Remove(id string) error {
+	slot, ok := ps.index[id]
+	if !ok {
+		return fmt.Errorf("%w: %q", ErrUnknownProduct, id)
+	}
+	old := ps.slots[slot]
+	nOthers := float64(ps.n - 1)
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		st.detach(slot, old, src)
+		ps.incr[p] = math.Log(nOthers+st.alpha) - st.predictiveTerms(old)
+		st.n--
+	})
+	ps.applyIncrements(ps.incr)
+	ps.n--
+	ps.slots[slot] = nil
+	ps.ids[slot] = ""
+	delete(ps.index, id)
+	ps.free = append(ps.free, slot)
+	if ps.isTouch[slot] {
+		ps.isTouch[slot] = false
+		k := 0
+		for _, s := range ps.touched {
+			if s != slot {
+				ps.touched[k] = s
+				k++
+			}
+		}
+		ps.touched = ps.touched[:k]
+	}
+	ps.maybeResample()
+	return nil
+}
+
+// ESS returns the effective sample size 1 / sum(W^2) of the normalised
+// weights, in [1, P].
+func (ps *Particles) ESS() float64 {
+	mw := maxOf(ps.logw)
+	var s, s2 float64
+	for _, lw := range ps.logw {
+		w := math.Exp(lw - mw)
+		s += w
+		s2 += w * w
+	}
+	return s * s / s2
+}
+
+// Diversity returns the number of distinct ancestors among the particles
+// since they were created: path degeneracy shows as a small number.
+func (ps *Particles) Diversity() int {
+	seen := make(map[int]struct{}, len(ps.origin))
+	for _, o := range ps.origin {
+		seen[o] = struct{}{}
+	}
+	return len(seen)
+}
+
+// maybeResample resamples when the ESS is below the threshold, then
+// reassigns the products touched since the last settle in every particle
+// so that duplicated particles diverge again.
+func (ps *Particles) maybeResample() bool {
+	if ps.ESS() >= ps.cfg.ESSFraction*float64(len(ps.parts)) {
+		return false
+	}
+	ps.resample()
+	touched := ps.touched
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		for _, s := range touched {
+			st.reassign(s, src)
+		}
+		st.updateAlpha(src)
+	})
+	return true
+}
+
+// resample draws P ancestors by the configured scheme and resets the
+// weights to equal.
+func (ps *Particles) resample() {
+	P := len(ps.parts)
+	w := make([]float64, P)
+	mw := maxOf(ps.logw)
+	sum := 0.0
+	for p, lw := range ps.logw {
+		w[p] = math.Exp(lw - mw)
+		sum += w[p]
+	}
+	for p := range w {
+		w[p] /= sum
+	}
+	src := rand.New(ps.master)
+	var anc []int
+	switch ps.cfg.Resampler {
+	case Residual:
+		anc = residualResample(w, src)
+	default:
+		anc = systematicResample(w, src.Float64())
+	}
+	next := make([]*State, P)
+	origin := make([]int, P)
+	for p, a := range anc {
+		next[p] = ps.parts[a].clone()
+		origin[p] = ps.origin[a]
+	}
+	for _, st := range ps.parts {
+		st.release()
+	}
+	ps.parts = next
+	ps.origin = origin
+	for p := range ps.logw {
+		ps.logw[p] = 0
+	}
+}
+
+// systematicResample returns ancestor indices, ascending, for normalised
+// weights w and one uniform u in [0, 1).
+func systematicResample(w []float64, u float64) []int {
+	P := len(w)
+	anc := make([]int, P)
+	acc := w[0]
+	j := 0
+	for p := 0; p < P; p++ {
+		x := (float64(p) + u) / float64(P)
+		for x > acc && j < P-1 {
+			j++
+			acc += w[j]
+		}
+		anc[p] = j
+	}
+	return anc
+}
+
+// residualResample keeps floor(P w_j) copies of each j and draws the
+// remaining ancestors multinomially from the residual weights.
+func residualResample(w []float64, src *rand.Rand) []int {
+	P := len(w)
+	anc := make([]int, 0, P)
+	res := make([]float64, P)
+	rsum := 0.0
+	for j, wj := range w {
+		c := int(math.Floor(float64(P) * wj))
+		for k := 0; k < c; k++ {
+			anc = append(anc, j)
+		}
+		res[j] = float64(P)*wj - float64(c)
+		rsum += res[j]
+	}
+	for len(anc) < P {
+		u := src.Float64() * rsum
+		acc := 0.0
+		j := 0
+		for ; j < P-1; j++ {
+			acc += res[j]
+			if u < acc {
+				break
+			}
+		}
+		anc = append(anc, j)
+	}
+	sort.Ints(anc)
+	return anc
+}
+
+// Settle ends a micro-batch: it resamples if the ESS is below the
+// threshold and then runs the rejuvenation moves (package doc), all of
+// which leave the current posterior invariant, and clears the touched set.
+// It reports whether it resampled.
+func (ps *Particles) Settle() bool {
+	resampled := false
+	if ps.ESS() < ps.cfg.ESSFraction*float64(len(ps.parts)) {
+		ps.resample()
+		resampled = true
+	}
+	touched := ps.touched
+	share := ps.cfg.RandomShare
+	sweeps := ps.cfg.Sweeps
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		var mem [][]int
+		for s := 0; s < sweeps; s++ {
+			for _, i := range touched {
+				st.reassign(i, src)
+			}
+			if share > 0 {
+				for i, d := range st.data {
+					if d != nil && !ps.isTouch[i] && src.Float64() < share {
+						st.reassign(i, src)
+					}
+				}
+			}
+			mem = st.members(mem)
+			for c := range st.segs {
+				if st.segs[c].size > 0 {
+					st.updateTheta(uint16(c), mem[c], src)
+				}
+			}
+			st.updateAlpha(src)
+		}
+	})
+	for _, s := range ps.touched {
+		ps.isTouch[s] = false
+	}
+	ps.touched = ps.touched[:0]
+	return resampled
+}
+
+// SetRejuvenation changes the move budget of later settles: sweeps passes,
+// each over the touched products plus a random share of the others.
+func (ps *Particles) SetRejuvenation(sweeps int, share float64) {
+	ps.cfg.Sweeps, ps.cfg.RandomShare = sweeps, share
+}
+
+// Draws returns the particles as weighted draws over the present products
+// in slot order (the order of Products). Labels are copied.
+func (ps *Particles) Draws() []Draw {
+	out := make([]Draw, len(ps.parts))
+	for p, st := range ps.parts {
+		d := st.draw(ps.logw[p])
+		lab := make([]uint16, 0, ps.n)
+		for s, c := range d.Labels {
+			if ps.slots[s] != nil {
+				lab = append(lab, c)
+			}
+		}
+		d.Labels = lab
+		out[p] = d
+	}
+	return out
+}
+
+// Data returns the data of the present products in slot order.
+func (ps *Particles) Data() []*Datum {
+	out := make([]*Datum, 0, ps.n)
+	for _, d := range ps.slots {
+		if d != nil {
+			out = append(out, d)
+		}
+	}
+	return out
+}
