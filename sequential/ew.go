@@ -79,6 +79,11 @@ func (d ExpWeibull) Quantile(u float64) float64 {
 
 // Rand draws one value using src by inversion.
 func (d ExpWeibull) Rand(src *rand.Rand) float64 {
-	// Float64 is in [0, 1); 1-u in (0, 1] avoids Quantile(0) = 0.
-	return d.Quantile(1 - src.Float64())
+	// u strictly inside (0, 1): Quantile(0) = 0 and Quantile(1) = +Inf
+	// are not draws of a positive finite value.
+	u := src.Float64()
+	for u == 0 {
+		u = src.Float64()
+	}
+	return d.Quantile(u)
 }

@@ -12,10 +12,10 @@ import "math"
 //
 // with G the Weibull CDF. The zero value is not valid.
 type NextValue struct {
-	k, logS    float64
-	power      float64 // a (L - n)
-	capLogG    float64 // log G(y_n); 0 when n = 0
-	capX       float64 // y_n; +Inf when n = 0
+	k, logS float64
+	power   float64 // a (L - n)
+	capLogG float64 // log G(y_n); 0 when n = 0
+	capX    float64 // y_n; +Inf when n = 0
 }
 
 // NewNextValue returns the next-value law for datum d under segment t.
