@@ -122,8 +122,13 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 	var sumLx, sumZ, sumLG, lgLast float64
 	for _, ly := range d.logY {
 		lx := ly - kn.logS
-		z := math.Exp(kn.k * lx)
-		lgLast = Log1mExp(z)
+		t := kn.k * lx
+		z := math.Exp(t)
+		if t < -30 {
+			lgLast = t - 0.5*z // see logGFromLogZ
+		} else {
+			lgLast = Log1mExp(z)
+		}
 		sumLx += lx
 		sumZ += z
 		sumLG += lgLast

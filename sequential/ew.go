@@ -33,9 +33,20 @@ func Log1mExp(z float64) float64 {
 	}
 }
 
-// logG returns log G(x) = log(1 - exp(-(x/s)^k)) given log x.
+// logWeibullCDF returns log G(x) = log(1 - exp(-(x/s)^k)) given log x.
 func logWeibullCDF(logx, k, logs float64) float64 {
-	return Log1mExp(math.Exp(k * (logx - logs)))
+	return logGFromLogZ(k * (logx - logs))
+}
+
+// logGFromLogZ returns log(1 - exp(-z)) given t = log z. For z below
+// 1e-13 it uses the series log z - z/2 (the next term, z^2/24, is below
+// 1e-27), which stays finite where z itself underflows to 0 and
+// Log1mExp(0) would give -Inf.
+func logGFromLogZ(t float64) float64 {
+	if t < -30 {
+		return t - 0.5*math.Exp(t)
+	}
+	return Log1mExp(math.Exp(t))
 }
 
 // LogProb returns the log density at x; -Inf for x <= 0.
@@ -44,8 +55,8 @@ func (d ExpWeibull) LogProb(x float64) float64 {
 		return math.Inf(-1)
 	}
 	lx := math.Log(x / d.S)
-	z := math.Exp(d.K * lx)
-	return math.Log(d.A) + math.Log(d.K) - math.Log(d.S) + (d.K-1)*lx - z + (d.A-1)*Log1mExp(z)
+	t := d.K * lx
+	return math.Log(d.A) + math.Log(d.K) - math.Log(d.S) + (d.K-1)*lx - math.Exp(t) + (d.A-1)*logGFromLogZ(t)
 }
 
 // Prob returns the density at x.
@@ -56,7 +67,7 @@ func (d ExpWeibull) LogCDF(x float64) float64 {
 	if x <= 0 {
 		return math.Inf(-1)
 	}
-	return d.A * Log1mExp(math.Pow(x/d.S, d.K))
+	return d.A * logGFromLogZ(d.K*math.Log(x/d.S))
 }
 
 // CDF returns F(x) = P(X <= x).

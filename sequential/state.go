@@ -286,7 +286,7 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		nTot += float64(n)
 		var lg float64
 		for _, ly := range d.logY {
-			lg = Log1mExp(math.Exp(kn.k * (ly - kn.logS)))
+			lg = logGFromLogZ(kn.k * (ly - kn.logS))
 			sumG += lg
 		}
 		sumG += float64(d.L()-n) * lg

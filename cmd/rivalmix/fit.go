@@ -31,6 +31,10 @@ type fitConfig struct {
 	strict            bool
 	competitors       int
 	quiet             bool
+	method            string
+	particles         int
+	settleEvery       int
+	finalSweeps       int
 }
 
 func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -50,6 +54,10 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	fs.BoolVar(&c.strict, "strict", false, "abort on the first bad line, and reject non-positive entries instead of dropping them")
 	fs.IntVar(&c.competitors, "competitors", 10, "candidate competitors L for messages that do not say")
 	fs.BoolVar(&c.quiet, "quiet", false, "no progress lines")
+	fs.StringVar(&c.method, "method", "gibbs", "gibbs (batch sampler) or particles (the sequential updater fed one product at a time)")
+	fs.IntVar(&c.particles, "particles", sequential.DefaultParticleConfig().Particles, "particles, with --method particles")
+	fs.IntVar(&c.settleEvery, "settle-every", 256, "with --method particles: settle (resample and rejuvenate) after this many products")
+	fs.IntVar(&c.finalSweeps, "final-sweeps", 10, "with --method particles: rejuvenation sweeps over all products at the end")
 	if err := fs.Parse(args); err != nil {
 		return err
 	}
@@ -77,24 +85,16 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 		return fmt.Errorf("fit: %s holds no product data", c.in)
 	}
 
-	src := rand.New(rand.NewPCG(c.seed, 0x5eed))
-	g, err := sequential.NewGibbs(cat.data, gc, src)
+	var draws []sequential.Draw
+	switch c.method {
+	case "gibbs":
+		draws, err = fitGibbs(ctx, c, gc, cat, stderr)
+	case "particles":
+		draws, err = fitParticles(ctx, c, cat, stderr)
+	default:
+		return fmt.Errorf("fit: --method %q, want gibbs or particles", c.method)
+	}
 	if err != nil {
-		return fmt.Errorf("fit: %w", err)
-	}
-	start := time.Now()
-	last := start
-	progress := func(sweep, total, segments int) {
-		if c.quiet || ctx.Err() != nil {
-			return
-		}
-		if now := time.Now(); sweep == total || now.Sub(last) >= time.Second {
-			last = now
-			fmt.Fprintf(stderr, "sampling: sweep %d/%d, %d segments, %.1fs\n", sweep, total, segments, now.Sub(start).Seconds())
-		}
-	}
-	draws := g.Run(src, progress)
-	if err := ctx.Err(); err != nil {
 		return err
 	}
 
@@ -110,9 +110,72 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 		return fmt.Errorf("fit: %w", err)
 	}
 	printSegmentTable(stdout, cat.data, sum)
-	fmt.Fprintf(stdout, "\n%d products, %d lines skipped, %d non-positive entries dropped; %d draws; expected Binder loss %.1f; wrote %s\n",
-		len(cat.ids), cat.badLines, cat.dropped, len(draws), sum.Binder, c.out)
+	fmt.Fprintf(stdout, "\n%d products, %d lines skipped, %d non-positive entries dropped; %d draws (%s); expected Binder loss %.1f; wrote %s\n",
+		len(cat.ids), cat.badLines, cat.dropped, len(draws), c.method, sum.Binder, c.out)
 	return nil
+}
+
+func fitGibbs(ctx context.Context, c fitConfig, gc sequential.GibbsConfig, cat *categoryData, stderr io.Writer) ([]sequential.Draw, error) {
+	src := rand.New(rand.NewPCG(c.seed, 0x5eed))
+	g, err := sequential.NewGibbs(cat.data, gc, src)
+	if err != nil {
+		return nil, fmt.Errorf("fit: %w", err)
+	}
+	start := time.Now()
+	last := start
+	progress := func(sweep, total, segments int) {
+		if c.quiet || ctx.Err() != nil {
+			return
+		}
+		if now := time.Now(); sweep == total || now.Sub(last) >= time.Second {
+			last = now
+			fmt.Fprintf(stderr, "sampling: sweep %d/%d, %d segments, %.1fs\n", sweep, total, segments, now.Sub(start).Seconds())
+		}
+	}
+	draws := g.Run(src, progress)
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	return draws, nil
+}
+
+// fitParticles feeds the products one at a time through the sequential
+// updater, settling every settleEvery products and once more at the end
+// with finalSweeps passes over all products.
+func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io.Writer) ([]sequential.Draw, error) {
+	pc := sequential.DefaultParticleConfig()
+	pc.Particles = c.particles
+	if c.settleEvery < 1 || c.finalSweeps < 0 {
+		return nil, errors.New("fit: --settle-every must be >= 1 and --final-sweeps >= 0")
+	}
+	ps, err := sequential.NewParticles(pc, c.seed, 0x5eed)
+	if err != nil {
+		return nil, fmt.Errorf("fit: %w", err)
+	}
+	start := time.Now()
+	for i, id := range cat.ids {
+		if err := ctx.Err(); err != nil {
+			return nil, err
+		}
+		if _, err := ps.Add(id, *cat.data[i]); err != nil {
+			return nil, fmt.Errorf("fit: product %s: %w", id, err)
+		}
+		if (i+1)%c.settleEvery == 0 || i+1 == len(cat.ids) {
+			ps.Settle()
+			if !c.quiet {
+				fmt.Fprintf(stderr, "updating: %d/%d products, ESS %.0f of %d, %d ancestors, %.1fs\n",
+					i+1, len(cat.ids), ps.ESS(), ps.NumParticles(), ps.Diversity(), time.Since(start).Seconds())
+			}
+		}
+	}
+	if c.finalSweeps > 0 {
+		ps.SetRejuvenation(c.finalSweeps, 1)
+		ps.Settle()
+	}
+	if !c.quiet {
+		fmt.Fprintf(stderr, "updating: done, ESS %.0f of %d, %.1fs\n", ps.ESS(), ps.NumParticles(), time.Since(start).Seconds())
+	}
+	return ps.Draws(), nil
 }
 
 // categoryData is one category's latest datum per product, in order of

@@ -1,0 +1,716 @@
+package sequential
+
+import (
+	"errors"
+	"fmt"
+	"math"
+	"slices"
+	"sort"
+)
+
+// This file holds the partition side of the posterior summaries: weights,
+// co-clustering probabilities, the expected Binder loss of a candidate
+// segmentation and its minimisation. Everything works from contingency
+// counts of a candidate against each draw, so memory stays linear in the
+// number of products; only SimilarityMatrix builds an N x N matrix.
+
+// ErrDraws reports weighted draws that cannot be summarised: none at all,
+// labels that do not match the data or the draw's segments, or weights
+// and concentrations that are not finite.
+var ErrDraws = errors.New("sequential: invalid draws")
+
+// NormalizedWeights returns the normalised importance weight of each draw,
+// w_d = exp(LogWeight_d - max) / sum, each in [0, 1] and summing to 1 up
+// to rounding. Subtracting the largest log weight first means no weight
+// overflows however large the common offset. A LogWeight of -Inf gives
+// weight 0.
+//
+// It panics if draws is empty, a LogWeight is NaN or +Inf, or every
+// LogWeight is -Inf; Summarize reports the same conditions as errors.
+func NormalizedWeights(draws []Draw) []float64 {
+	w, err := normalizedWeights(draws)
+	if err != nil {
+		panic(err.Error())
+	}
+	return w
+}
+
+func normalizedWeights(draws []Draw) ([]float64, error) {
+	if len(draws) == 0 {
+		return nil, fmt.Errorf("%w: no draws", ErrDraws)
+	}
+	top := math.Inf(-1)
+	for d, dr := range draws {
+		lw := dr.LogWeight
+		if math.IsNaN(lw) || math.IsInf(lw, 1) {
+			return nil, fmt.Errorf("%w: draw %d has log weight %v", ErrDraws, d, lw)
+		}
+		top = math.Max(top, lw)
+	}
+	if math.IsInf(top, -1) {
+		return nil, fmt.Errorf("%w: every log weight is -Inf", ErrDraws)
+	}
+	w := make([]float64, len(draws))
+	var sum float64
+	for d, dr := range draws {
+		w[d] = math.Exp(dr.LogWeight - top)
+		sum += w[d]
+	}
+	for d := range w {
+		w[d] /= sum
+	}
+	return w, nil
+}
+
+// checkLabelLengths panics unless every draw labels the same number of
+// products; it returns that number.
+func checkLabelLengths(draws []Draw) int {
+	if len(draws) == 0 {
+		panic("sequential: no draws")
+	}
+	n := len(draws[0].Labels)
+	for d := range draws {
+		if len(draws[d].Labels) != n {
+			panic(fmt.Sprintf("sequential: draw %d labels %d products, draw 0 labels %d", d, len(draws[d].Labels), n))
+		}
+	}
+	return n
+}
+
+// Similarity returns, for each pair (i, j) of product indices, the
+// posterior probability that products i and j share a segment: the
+// weighted fraction of draws that give them the same label, in [0, 1]
+// (1 when i == j). It costs O(draws x pairs) time and no N x N memory.
+//
+// It panics if draws is empty, the draws label different numbers of
+// products, an index is out of range, or the weights are invalid (see
+// NormalizedWeights).
+func Similarity(draws []Draw, pairs [][2]int) []float64 {
+	n := checkLabelLengths(draws)
+	for _, p := range pairs {
+		if p[0] < 0 || p[0] >= n || p[1] < 0 || p[1] >= n {
+			panic(fmt.Sprintf("sequential: Similarity: pair %v outside 0..%d", p, n-1))
+		}
+	}
+	w := NormalizedWeights(draws)
+	out := make([]float64, len(pairs))
+	var wsum float64
+	for d, dr := range draws {
+		wsum += w[d]
+		for k, p := range pairs {
+			if dr.Labels[p[0]] == dr.Labels[p[1]] {
+				out[k] += w[d]
+			}
+		}
+	}
+	for k, p := range pairs {
+		if p[0] == p[1] {
+			out[k] = 1
+			continue
+		}
+		out[k] = math.Min(out[k]/wsum, 1)
+	}
+	return out
+}
+
+// SimilarityMatrix returns the full N x N posterior similarity matrix,
+// [i][j] = P(products i and j share a segment) in [0, 1], symmetric with
+// unit diagonal. It needs N^2 floats of memory and O(draws x N^2) time in
+// the worst case, so it is meant for small categories, tests and
+// displays of a few hundred products; the service uses Similarity,
+// ExpectedBinder and PointPartition, which never build it.
+//
+// It panics on the same misuse as Similarity.
+func SimilarityMatrix(draws []Draw) [][]float64 {
+	n := checkLabelLengths(draws)
+	w := NormalizedWeights(draws)
+	parts := distinctPartitions(draws, w)
+	flat := make([]float64, n*n)
+	m := make([][]float64, n)
+	for i := range m {
+		m[i] = flat[i*n : (i+1)*n : (i+1)*n]
+	}
+	var wsum float64
+	for _, p := range parts {
+		wsum += p.w
+		if p.w == 0 {
+			continue
+		}
+		for c := 0; c < p.k; c++ {
+			mem := p.members(c)
+			for x, i := range mem {
+				for _, j := range mem[x+1:] {
+					m[i][j] += p.w
+				}
+			}
+		}
+	}
+	for i := range m {
+		m[i][i] = 1
+		for j := i + 1; j < n; j++ {
+			v := math.Min(m[i][j]/wsum, 1)
+			m[i][j], m[j][i] = v, v
+		}
+	}
+	return m
+}
+
+// ExpectedBinder returns the posterior expected Binder loss of a
+// candidate partition of the products (equal costs for the two kinds of
+// error, counted over unordered pairs i < j): the weighted mean over draws
+// of the number of pairs that the candidate and the draw treat
+// differently, in [0, N(N-1)/2]. partition[i] is product i's segment;
+// any integer values name segments.
+//
+// Each draw contributes sum_k C(n_k,2) + sum_l C(m_l,2) - 2 sum_kl C(n_kl,2)
+// from its contingency table against the candidate (n_k draw segment
+// sizes, m_l candidate segment sizes, n_kl their overlaps), in O(N) time
+// per draw.
+//
+// It panics if draws is empty, a draw's labels or partition differ in
+// length, or the weights are invalid (see NormalizedWeights).
+func ExpectedBinder(draws []Draw, partition []int) float64 {
+	n := checkLabelLengths(draws)
+	if len(partition) != n {
+		panic(fmt.Sprintf("sequential: ExpectedBinder: partition has %d products, draws have %d", len(partition), n))
+	}
+	w := NormalizedWeights(draws)
+	z, k := compactInts(partition)
+	order, start := groupBySegment(z, k)
+	candPairs := pairsWithin(start)
+	cnt := make([]int32, maxLabel(draws)+1)
+	var loss, wsum float64
+	for d, dr := range draws {
+		wsum += w[d]
+		if w[d] == 0 {
+			continue
+		}
+		drawPairs := samePairs(dr.Labels, cnt)
+		agree := agreePairs(order, start, dr.Labels, cnt)
+		loss += w[d] * float64(drawPairs+candPairs-2*agree)
+	}
+	return loss / wsum
+}
+
+// PointPartition returns a point estimate of the segmentation, the
+// partition with (locally) least expected Binder loss, and that loss
+// (pairs of products, as ExpectedBinder). Segments are numbered 0..K-1 by
+// size, largest first, ties broken by smallest member index.
+//
+// The search starts from the draw whose own partition has the least
+// expected loss (Dahl's least-squares choice, ties to the earliest draw)
+// and then sweeps the products, moving each to the existing segment or
+// new singleton that lowers the expected loss most, while some move
+// lowers it; at most maxSweeps (>= 0) sweeps. The change in loss of a
+// move is read from per-draw contingency counts kept up to date, costing
+// O(distinct draws x K) per product, never an N x N matrix. Choosing the
+// start costs O(distinct draws^2 x N); draws with identical partitions
+// are merged first.
+//
+// It panics if draws is empty, the draws label different numbers of
+// products, maxSweeps < 0, or the weights are invalid.
+func PointPartition(draws []Draw, maxSweeps int) ([]int, float64) {
+	checkLabelLengths(draws)
+	if maxSweeps < 0 {
+		panic("sequential: PointPartition: maxSweeps < 0")
+	}
+	w := NormalizedWeights(draws)
+	parts := distinctPartitions(draws, w)
+	part := pointPartition(parts, maxSweeps)
+	return part, expectedBinderParts(parts, part)
+}
+
+// AdjustedRand returns the adjusted Rand index of Hubert and Arabie
+// (1985) between two partitions of the same products: 1 for identical
+// partitions (up to renaming of segments), about 0 on average for
+// unrelated ones, and negative when they agree less than chance. Segment
+// names are arbitrary integers. When the index is undefined (fewer than
+// two products, or both partitions all-in-one or both all-singletons) the
+// partitions are necessarily identical and it returns 1.
+//
+// It panics if the lengths differ.
+func AdjustedRand(a, b []int) float64 {
+	if len(a) != len(b) {
+		panic(fmt.Sprintf("sequential: AdjustedRand: partitions of %d and %d products", len(a), len(b)))
+	}
+	za, ka := compactInts(a)
+	zb, _ := compactInts(b)
+	order, start := groupBySegment(za, ka)
+	cnt := make([]int32, len(b)+1)
+	index := float64(agreePairs(order, start, zb, cnt))
+	sa := float64(pairsWithin(start))
+	sb := float64(samePairs(zb, cnt))
+	n := float64(len(a))
+	all := n * (n - 1) / 2
+	if all == 0 {
+		return 1
+	}
+	expected := sa * sb / all
+	top := (sa + sb) / 2
+	if top == expected {
+		return 1
+	}
+	return (index - expected) / (top - expected)
+}
+
+// compactInts renames arbitrary integer segment names to 0..k-1 in order
+// of first appearance.
+func compactInts(x []int) ([]int32, int) {
+	name := make(map[int]int32)
+	z := make([]int32, len(x))
+	for i, v := range x {
+		c, ok := name[v]
+		if !ok {
+			c = int32(len(name))
+			name[v] = c
+		}
+		z[i] = c
+	}
+	return z, len(name)
+}
+
+// groupBySegment lists the products segment by segment (ascending within
+// each): segment c is order[start[c]:start[c+1]].
+func groupBySegment(z []int32, k int) (order, start []int32) {
+	start = make([]int32, k+1)
+	for _, c := range z {
+		start[c+1]++
+	}
+	for c := 0; c < k; c++ {
+		start[c+1] += start[c]
+	}
+	order = make([]int32, len(z))
+	next := slices.Clone(start[:k])
+	for i, c := range z {
+		order[next[c]] = int32(i)
+		next[c]++
+	}
+	return order, start
+}
+
+// pairsWithin returns sum_c C(m_c, 2) for the segment sizes encoded by start.
+func pairsWithin(start []int32) int64 {
+	var s int64
+	for c := 0; c+1 < len(start); c++ {
+		m := int64(start[c+1] - start[c])
+		s += m * (m - 1) / 2
+	}
+	return s
+}
+
+// samePairs returns the number of unordered pairs with equal labels.
+// cnt must be zero and long enough for every label; it is left zero.
+func samePairs[L uint16 | int32](labels []L, cnt []int32) int64 {
+	var s int64
+	for _, l := range labels {
+		s += int64(cnt[l])
+		cnt[l]++
+	}
+	for _, l := range labels {
+		cnt[l] = 0
+	}
+	return s
+}
+
+// agreePairs returns sum_kl C(n_kl, 2), the number of unordered pairs that
+// share a segment both in the grouped partition (order, start) and in
+// labels. Counting within one group, the j-th member whose label is l
+// adds the j-1 earlier ones, so no table is formed. cnt must be zero and
+// long enough for every label; it is left zero.
+func agreePairs[L uint16 | int32](order, start []int32, labels []L, cnt []int32) int64 {
+	var s int64
+	for c := 0; c+1 < len(start); c++ {
+		mem := order[start[c]:start[c+1]]
+		for _, i := range mem {
+			l := labels[i]
+			s += int64(cnt[l])
+			cnt[l]++
+		}
+		for _, i := range mem {
+			cnt[labels[i]] = 0
+		}
+	}
+	return s
+}
+
+// drawPartition is one distinct partition among the draws. Labels are
+// renamed 0..k-1 in order of first appearance, so two draws with the same
+// partition have equal z and are merged, their weights added.
+type drawPartition struct {
+	z     []int32
+	k     int
+	order []int32 // products grouped by segment; see groupBySegment
+	start []int32
+	pairs int64   // sum_c C(n_c, 2)
+	w     float64 // total normalised weight of the merged draws
+}
+
+func (p *drawPartition) members(c int) []int32 { return p.order[p.start[c]:p.start[c+1]] }
+
+// distinctPartitions merges draws with identical partitions, keeping the
+// order of first appearance (so ties resolve to the earliest draw).
+func distinctPartitions(draws []Draw, w []float64) []*drawPartition {
+	n := len(draws[0].Labels)
+	rename := make([]int32, maxLabel(draws)+1)
+	for i := range rename {
+		rename[i] = -1
+	}
+	buf := make([]int32, n)
+	seen := make(map[uint64][]int)
+	var parts []*drawPartition
+	for d, dr := range draws {
+		k := int32(0)
+		for i, l := range dr.Labels {
+			c := rename[l]
+			if c < 0 {
+				c = k
+				rename[l] = k
+				k++
+			}
+			buf[i] = c
+		}
+		for _, l := range dr.Labels {
+			rename[l] = -1
+		}
+		h := hashLabels(buf)
+		found := false
+		for _, u := range seen[h] {
+			if slices.Equal(parts[u].z, buf) {
+				parts[u].w += w[d]
+				found = true
+				break
+			}
+		}
+		if found {
+			continue
+		}
+		z := slices.Clone(buf)
+		order, start := groupBySegment(z, int(k))
+		seen[h] = append(seen[h], len(parts))
+		parts = append(parts, &drawPartition{z: z, k: int(k), order: order, start: start, pairs: pairsWithin(start), w: w[d]})
+	}
+	return parts
+}
+
+// maxLabel returns the largest label of any draw (0 if there are none).
+func maxLabel(draws []Draw) int {
+	top := uint16(0)
+	for _, dr := range draws {
+		for _, l := range dr.Labels {
+			top = max(top, l)
+		}
+	}
+	return int(top)
+}
+
+// hashLabels is 64-bit FNV-1a over the labels; collisions are resolved by
+// comparing the labels themselves.
+func hashLabels(z []int32) uint64 {
+	h := uint64(14695981039346656037)
+	for _, c := range z {
+		h ^= uint64(uint32(c))
+		h *= 1099511628211
+	}
+	return h
+}
+
+// expectedBinderParts is ExpectedBinder over merged partitions.
+func expectedBinderParts(parts []*drawPartition, partition []int) float64 {
+	z, k := compactInts(partition)
+	order, start := groupBySegment(z, k)
+	candPairs := pairsWithin(start)
+	cnt := make([]int32, len(partition)+1)
+	var loss, wsum float64
+	for _, p := range parts {
+		wsum += p.w
+		if p.w == 0 {
+			continue
+		}
+		agree := agreePairs(order, start, p.z, cnt)
+		loss += p.w * float64(p.pairs+candPairs-2*agree)
+	}
+	return loss / wsum
+}
+
+// pointPartition runs the search of PointPartition and returns the
+// partition in canonical numbering.
+func pointPartition(parts []*drawPartition, maxSweeps int) []int {
+	best := bestDrawPartition(parts)
+	s := newBinderSearch(parts, slices.Clone(parts[best].z), parts[best].k)
+	s.improve(maxSweeps)
+	return canonicalPartition(s.z)
+}
+
+// bestDrawPartition returns the index of the merged partition whose
+// expected Binder loss is least. The loss of partition u is
+// sum_v w_v pairs_v + pairs_u - 2 sum_v w_v agree(u, v); agree is
+// symmetric, so each unordered pair of partitions is counted once.
+func bestDrawPartition(parts []*drawPartition) int {
+	n := len(parts[0].z)
+	cnt := make([]int32, n+1)
+	acc := make([]float64, len(parts))
+	var base, wsum float64
+	for _, p := range parts {
+		base += p.w * float64(p.pairs)
+		wsum += p.w
+	}
+	var table []int32
+	for u, pu := range parts {
+		for v := u; v < len(parts); v++ {
+			pv := parts[v]
+			if pu.w == 0 && pv.w == 0 {
+				continue
+			}
+			var a float64
+			if cells := pu.k * pv.k; cells <= denseTableCells {
+				// Few segments: count the contingency table directly,
+				// reading both label vectors in order.
+				if len(table) < cells {
+					table = make([]int32, denseTableCells)
+				}
+				a = float64(agreeDense(pu.z, pv.z, pv.k, table[:cells]))
+			} else {
+				a = float64(agreePairs(pu.order, pu.start, pv.z, cnt))
+			}
+			acc[u] += pv.w * a
+			if v != u {
+				acc[v] += pu.w * a
+			}
+		}
+	}
+	best, bestLoss := 0, math.Inf(1)
+	for u, p := range parts {
+		loss := base/wsum + float64(p.pairs) - 2*acc[u]/wsum
+		if loss < bestLoss {
+			best, bestLoss = u, loss
+		}
+	}
+	return best
+}
+
+// denseTableCells bounds the contingency tables that bestDrawPartition
+// counts in a dense array (16 KiB, inside a first-level cache).
+const denseTableCells = 4096
+
+// agreeDense returns sum_kl C(n_kl, 2) for two label vectors with kb
+// labels in b, counting n_kl in table (len >= ka*kb, zero on entry and on
+// return).
+func agreeDense(a, b []int32, kb int, table []int32) int64 {
+	for i, x := range a {
+		table[int(x)*kb+int(b[i])]++
+	}
+	var s int64
+	for c, m := range table {
+		s += int64(m) * int64(m-1) / 2
+		table[c] = 0
+	}
+	return s
+}
+
+// canonicalPartition renumbers segments 0..K-1 by size descending, then
+// by smallest member index.
+func canonicalPartition(z []int32) []int {
+	type seg struct {
+		name, size, first int
+	}
+	idx := make(map[int32]int)
+	var segs []seg
+	for i, c := range z {
+		x, ok := idx[c]
+		if !ok {
+			x = len(segs)
+			idx[c] = x
+			segs = append(segs, seg{name: x, first: i})
+		}
+		segs[x].size++
+	}
+	sort.Slice(segs, func(a, b int) bool {
+		if segs[a].size != segs[b].size {
+			return segs[a].size > segs[b].size
+		}
+		return segs[a].first < segs[b].first
+	})
+	rank := make([]int, len(segs))
+	for r, s := range segs {
+		rank[s.name] = r
+	}
+	out := make([]int, len(z))
+	for i, c := range z {
+		out[i] = rank[idx[c]]
+	}
+	return out
+}
+
+// cell is one non-zero entry n_kl of a draw's contingency table against
+// the point partition: count products of draw segment k in point slot seg.
+type cell struct {
+	seg, count int32
+}
+
+// binderSearch holds the point partition being improved and, for every
+// merged draw v and each of its segments k, the sparse row of counts
+// n^v_{k,l} over point slots l. A row has at most min(K, n^v_k) cells, so
+// the tables together hold at most N cells per draw.
+type binderSearch struct {
+	parts  []*drawPartition // those with positive weight
+	wsum   float64
+	z      []int32 // point slot of each product
+	size   []int32 // members per slot; 0 marks a free slot
+	free   []int32
+	rowOff []int // rows of parts[v] begin at rowOff[v]
+	rows   [][]cell
+	aff    []float64 // scratch: aff[l] = sum_v w_v n^v_{z_v(i), l}
+}
+
+func newBinderSearch(all []*drawPartition, z []int32, k int) *binderSearch {
+	s := &binderSearch{z: z, size: make([]int32, k), aff: make([]float64, k)}
+	for _, p := range all {
+		if p.w > 0 {
+			s.parts = append(s.parts, p)
+			s.wsum += p.w
+		}
+	}
+	for _, c := range z {
+		s.size[c]++
+	}
+	s.rowOff = make([]int, len(s.parts)+1)
+	for v, p := range s.parts {
+		s.rowOff[v+1] = s.rowOff[v] + p.k
+	}
+	s.rows = make([][]cell, s.rowOff[len(s.parts)])
+	dense := make([]int32, k)
+	var touched []int32
+	for v, p := range s.parts {
+		for c := 0; c < p.k; c++ {
+			for _, i := range p.members(c) {
+				l := z[i]
+				if dense[l] == 0 {
+					touched = append(touched, l)
+				}
+				dense[l]++
+			}
+			row := make([]cell, len(touched))
+			for x, l := range touched {
+				row[x] = cell{seg: l, count: dense[l]}
+				dense[l] = 0
+			}
+			touched = touched[:0]
+			s.rows[s.rowOff[v]+c] = row
+		}
+	}
+	return s
+}
+
+// affinity fills s.aff for product i: aff[l]/wsum is the sum over members
+// j of slot l of P(i and j share a segment), counting i itself once if
+// it is in l.
+func (s *binderSearch) affinity(i int) {
+	clear(s.aff)
+	for v, p := range s.parts {
+		for _, c := range s.rows[s.rowOff[v]+int(p.z[i])] {
+			s.aff[c.seg] += p.w * float64(c.count)
+		}
+	}
+}
+
+// improve sweeps the products until no single move lowers the expected
+// loss or maxSweeps sweeps are done.
+func (s *binderSearch) improve(maxSweeps int) {
+	for sweep := 0; sweep < maxSweeps; sweep++ {
+		moved := false
+		for i := range s.z {
+			if s.tryMove(i) {
+				moved = true
+			}
+		}
+		if !moved {
+			return
+		}
+	}
+}
+
+// tryMove moves product i to the slot (or new singleton) that lowers the
+// expected loss most, if any does by more than rounding could explain.
+// With q_l = sum_{j in l, j != i} P(i ~ j), moving i from slot f to slot
+// l changes the loss by (m_l - (m_f - 1)) - 2 (q_l - q_f): each pair
+// gained costs 1 - 2P and each pair lost saves it.
+func (s *binderSearch) tryMove(i int) bool {
+	from := s.z[i]
+	s.affinity(i)
+	mFrom := float64(s.size[from])
+	qFrom := s.aff[from]/s.wsum - 1
+	const newSlot = -2
+	best, bestDelta := int32(-1), 0.0
+	for l, m := range s.size {
+		if m == 0 || int32(l) == from {
+			continue
+		}
+		delta := float64(m) - (mFrom - 1) - 2*(s.aff[l]/s.wsum-qFrom)
+		if delta < -moveTolerance(mFrom, float64(m)) && delta < bestDelta {
+			best, bestDelta = int32(l), delta
+		}
+	}
+	if mFrom > 1 {
+		delta := -(mFrom - 1) + 2*qFrom
+		if delta < -moveTolerance(mFrom, 0) && delta < bestDelta {
+			best = newSlot
+		}
+	}
+	if best == -1 {
+		return false
+	}
+	if best == newSlot {
+		best = s.newSlot()
+	}
+	s.move(i, best)
+	return true
+}
+
+// moveTolerance is the least improvement a move must make, so that moves
+// justified only by rounding in the weighted sums (relative error about
+// 1e-16 times the number of draws) cannot cycle.
+func moveTolerance(mFrom, mTo float64) float64 { return 1e-12 * (1 + mFrom + mTo) }
+
+func (s *binderSearch) newSlot() int32 {
+	if n := len(s.free); n > 0 {
+		l := s.free[n-1]
+		s.free = s.free[:n-1]
+		return l
+	}
+	s.size = append(s.size, 0)
+	s.aff = append(s.aff, 0)
+	return int32(len(s.size) - 1)
+}
+
+func (s *binderSearch) move(i int, to int32) {
+	from := s.z[i]
+	for v, p := range s.parts {
+		row := &s.rows[s.rowOff[v]+int(p.z[i])]
+		rowAdd(row, from, -1)
+		rowAdd(row, to, 1)
+	}
+	s.size[from]--
+	s.size[to]++
+	s.z[i] = to
+	if s.size[from] == 0 {
+		s.free = append(s.free, from)
+	}
+}
+
+func rowAdd(row *[]cell, seg, delta int32) {
+	r := *row
+	for x := range r {
+		if r[x].seg == seg {
+			r[x].count += delta
+			if r[x].count == 0 {
+				r[x] = r[len(r)-1]
+				*row = r[:len(r)-1]
+			}
+			return
+		}
+	}
+	if delta < 0 {
+		panic("sequential: internal error: contingency count below zero")
+	}
+	*row = append(r, cell{seg: seg, count: delta})
+}
