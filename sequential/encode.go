@@ -13,7 +13,8 @@ import (
 // with a uvarint; counts are uvarints, floats are IEEE-754 bits):
 //
 //	version byte
-//	config: aux, particles, ess fraction, resampler, sweeps, random share
+//	config: aux, particles, ess fraction, resampler, sweeps, random share, refit sweeps,
+//	  keep sweeps
 //	prior: count a, count b, (mu, sigma) of log a, log k, log s, alpha shape, alpha rate
 //	master generator (PCG MarshalBinary blob), log evidence
 //	slots: count, then per slot a presence byte and, if present, id, L, n, n values
@@ -51,6 +52,8 @@ func (ps *Particles) Encode() []byte {
 	e.i(int(c.Resampler))
 	e.i(c.Sweeps)
 	e.f(c.RandomShare)
+	e.i(c.RefitSweeps)
+	e.i(c.KeepSweeps)
 	pr := ps.prior
 	for _, v := range []float64{pr.CountA, pr.CountB, pr.LogA.Mu, pr.LogA.Sigma, pr.LogK.Mu, pr.LogK.Sigma,
 		pr.LogS.Mu, pr.LogS.Sigma, pr.AlphaShape, pr.AlphaRate} {
@@ -199,6 +202,8 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	c.Resampler = Resampler(d.i("resampler", 16))
 	c.Sweeps = d.i("sweeps", big)
 	c.RandomShare = d.f("random share")
+	c.RefitSweeps = d.i("refit sweeps", big)
+	c.KeepSweeps = d.i("keep sweeps", big)
 	c.Workers = workers
 	pr := &c.Prior
 	for _, p := range []*float64{&pr.CountA, &pr.CountB, &pr.LogA.Mu, &pr.LogA.Sigma, &pr.LogK.Mu, &pr.LogK.Sigma,

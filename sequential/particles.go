@@ -59,17 +59,27 @@ type ParticleConfig struct {
 	// kernel and alpha.
 	Sweeps      int
 	RandomShare float64
+	// RefitSweeps is the number of passes over every product that
+	// SettleRefit runs at the end of a refit.
+	RefitSweeps int
+	// KeepSweeps is how many of a settle's last rejuvenation sweeps each
+	// particle keeps as draws for the summaries (1 = the final state
+	// only). Every kept state is a draw from the same weighted target, so
+	// averaging over them lowers the Monte Carlo error of the summaries
+	// at the cost of P * KeepSweeps label copies.
+	KeepSweeps int
 	// Workers is the number of goroutines over particles; 0 means
 	// GOMAXPROCS. Results do not depend on it.
 	Workers int
 }
 
 // DefaultParticleConfig returns P = 256, m = 3, resampling below P/2 with
-// the systematic scheme, and 2 rejuvenation sweeps over the touched
-// products plus 10% of the rest.
+// the systematic scheme, 2 rejuvenation sweeps per settle over the touched
+// products plus 10% of the rest, 10 sweeps over all products at the end of
+// a refit, and the states of the last 4 sweeps kept as draws.
 func DefaultParticleConfig() ParticleConfig {
 	return ParticleConfig{Prior: DefaultPrior(), Aux: 3, Particles: 256, ESSFraction: 0.5,
-		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1}
+		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1, RefitSweeps: 10, KeepSweeps: 4}
 }
 
 // Validate reports the first setting out of range.
@@ -88,6 +98,10 @@ func (c ParticleConfig) Validate() error {
 		return fmt.Errorf("%w: resampler %d unknown", ErrConfig, int(c.Resampler))
 	case c.Sweeps < 0:
 		return fmt.Errorf("%w: sweeps = %d, want >= 0", ErrConfig, c.Sweeps)
+	case c.RefitSweeps < 0:
+		return fmt.Errorf("%w: refit sweeps = %d, want >= 0", ErrConfig, c.RefitSweeps)
+	case c.KeepSweeps < 1:
+		return fmt.Errorf("%w: keep sweeps = %d, want >= 1", ErrConfig, c.KeepSweeps)
 	case !(c.RandomShare >= 0 && c.RandomShare <= 1):
 		return fmt.Errorf("%w: random share = %v, want in [0, 1]", ErrConfig, c.RandomShare)
 	case c.Workers < 0:
@@ -125,6 +139,11 @@ type Particles struct {
 
 	logEvidence float64 // running sum of log normalised incremental weights
 
+	// kept[p] holds particle p's states after the last KeepSweeps sweeps of
+	// the latest settle, valid until the next change (derived, not saved).
+	kept      [][]Draw
+	keptValid bool
+
 	// per-operation scratch, not part of the state
 	streams []*rand.Rand
 	pcgs    []*rand.PCG
@@ -160,6 +179,11 @@ func (ps *Particles) initScratch() {
 	}
 	ps.incr = make([]float64, P)
 }
+
+// Pending returns the number of products changed since the last settle.
+// It is part of the saved state, so a caller that settles every k pending
+// changes settles at the same points after a restart from a snapshot.
+func (ps *Particles) Pending() int { return len(ps.touched) }
 
 // Len returns the number of products present.
 func (ps *Particles) Len() int { return ps.n }
@@ -200,6 +224,7 @@ func (ps *Particles) reseed() {
 // forEach runs f for every particle over the configured workers and
 // waits. f must touch only particle p's state and ps.incr[p].
 func (ps *Particles) forEach(f func(p int, st *State, src *rand.Rand)) {
+	ps.keptValid = false
 	ps.reseed()
 	w := ps.cfg.Workers
 	if w == 0 {
@@ -446,9 +471,53 @@ func (ps *Particles) maybeResample() bool {
 		for _, s := range touched {
 			st.reassign(s, src)
 		}
+		st.refreshSmallSegments(touched, src)
 		st.updateAlpha(src)
 	})
 	return true
+}
+
+// smallSegment is the largest segment whose kernel is refreshed between
+// settles. New segments start with a theta drawn from the base measure;
+// refreshing them early lets later products join them instead of opening
+// yet more segments, while large segments, whose update costs a pass over
+// all their members, wait for the settle.
+const smallSegment = 64
+
+// refreshSmallSegments slice-updates the kernel of every segment holding
+// one of the touched slots and at most smallSegment members. Which
+// segments qualify depends only on the assignments, which the update does
+// not change, so the composite move still leaves the posterior invariant.
+func (s *State) refreshSmallSegments(touched []int, src *rand.Rand) {
+	var pick []uint16
+	for _, i := range touched {
+		c := s.label(i)
+		if c == Absent || s.segs[c].size > smallSegment {
+			continue
+		}
+		dup := false
+		for _, q := range pick {
+			dup = dup || q == c
+		}
+		if !dup {
+			pick = append(pick, c)
+		}
+	}
+	if len(pick) == 0 {
+		return
+	}
+	sort.Slice(pick, func(a, b int) bool { return pick[a] < pick[b] })
+	mem := make([][]int, len(pick))
+	for i, c := range s.labels.l {
+		for k, q := range pick {
+			if c == q {
+				mem[k] = append(mem[k], i)
+			}
+		}
+	}
+	for k, c := range pick {
+		s.updateTheta(c, mem[k], src)
+	}
 }
 
 // resample draws P ancestors by the configured scheme and resets the
@@ -543,21 +612,41 @@ func residualResample(w []float64, src *rand.Rand) []int {
 // which leave the current posterior invariant, and clears the touched set.
 // It reports whether it resampled.
 func (ps *Particles) Settle() bool {
+	return ps.settle(ps.cfg.Sweeps, ps.cfg.RandomShare)
+}
+
+// SettleRefit ends a refit: a Settle whose rejuvenation makes RefitSweeps
+// passes over every product, so that the number of segments and the
+// kernels catch up with a whole refit's worth of changes.
+func (ps *Particles) SettleRefit() bool {
+	return ps.settle(ps.cfg.RefitSweeps, 1)
+}
+
+func (ps *Particles) settle(sweeps int, share float64) bool {
 	resampled := false
 	if ps.ESS() < ps.cfg.ESSFraction*float64(len(ps.parts)) {
 		ps.resample()
 		resampled = true
 	}
 	touched := ps.touched
-	share := ps.cfg.RandomShare
-	sweeps := ps.cfg.Sweeps
+	if len(ps.kept) != len(ps.parts) {
+		ps.kept = make([][]Draw, len(ps.parts))
+	}
+	keepFrom := sweeps - ps.cfg.KeepSweeps
 	ps.forEach(func(p int, st *State, src *rand.Rand) {
 		var mem [][]int
+		ps.kept[p] = ps.kept[p][:0]
 		for s := 0; s < sweeps; s++ {
 			for _, i := range touched {
 				st.reassign(i, src)
 			}
-			if share > 0 {
+			if share >= 1 {
+				for i, d := range st.data {
+					if d != nil && !ps.isTouch[i] {
+						st.reassign(i, src)
+					}
+				}
+			} else if share > 0 {
 				for i, d := range st.data {
 					if d != nil && !ps.isTouch[i] && src.Float64() < share {
 						st.reassign(i, src)
@@ -571,8 +660,12 @@ func (ps *Particles) Settle() bool {
 				}
 			}
 			st.updateAlpha(src)
+			if s >= keepFrom {
+				ps.kept[p] = append(ps.kept[p], ps.compactDraw(st, ps.logw[p]))
+			}
 		}
 	})
+	ps.keptValid = sweeps > 0
 	for _, s := range ps.touched {
 		ps.isTouch[s] = false
 	}
@@ -588,20 +681,36 @@ func (ps *Particles) SetRejuvenation(sweeps int, share float64) {
 
 // Draws returns the particles as weighted draws over the present products
 // in slot order (the order of Products). Labels are copied.
+//
+// Right after a settle, each particle contributes the states of its last
+// KeepSweeps sweeps, each with the particle's weight; otherwise its
+// current state.
 func (ps *Particles) Draws() []Draw {
+	if ps.keptValid {
+		var out []Draw
+		for _, k := range ps.kept {
+			out = append(out, k...)
+		}
+		return out
+	}
 	out := make([]Draw, len(ps.parts))
 	for p, st := range ps.parts {
-		d := st.draw(ps.logw[p])
-		lab := make([]uint16, 0, ps.n)
-		for s, c := range d.Labels {
-			if ps.slots[s] != nil {
-				lab = append(lab, c)
-			}
-		}
-		d.Labels = lab
-		out[p] = d
+		out[p] = ps.compactDraw(st, ps.logw[p])
 	}
 	return out
+}
+
+// compactDraw exports st over the present products only, labels copied.
+func (ps *Particles) compactDraw(st *State, logw float64) Draw {
+	d := st.draw(logw)
+	lab := make([]uint16, 0, ps.n)
+	for s, c := range d.Labels {
+		if ps.slots[s] != nil {
+			lab = append(lab, c)
+		}
+	}
+	d.Labels = lab
+	return d
 }
 
 // Data returns the data of the present products in slot order.

@@ -145,6 +145,7 @@ func fitGibbs(ctx context.Context, c fitConfig, gc sequential.GibbsConfig, cat *
 func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io.Writer) ([]sequential.Draw, error) {
 	pc := sequential.DefaultParticleConfig()
 	pc.Particles = c.particles
+	pc.RefitSweeps = c.finalSweeps
 	if c.settleEvery < 1 || c.finalSweeps < 0 {
 		return nil, errors.New("fit: --settle-every must be >= 1 and --final-sweeps >= 0")
 	}
@@ -160,7 +161,7 @@ func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io
 		if _, err := ps.Add(id, *cat.data[i]); err != nil {
 			return nil, fmt.Errorf("fit: product %s: %w", id, err)
 		}
-		if (i+1)%c.settleEvery == 0 || i+1 == len(cat.ids) {
+		if (i+1)%c.settleEvery == 0 {
 			ps.Settle()
 			if !c.quiet {
 				fmt.Fprintf(stderr, "updating: %d/%d products, ESS %.0f of %d, %d ancestors, %.1fs\n",
@@ -168,10 +169,7 @@ func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io
 			}
 		}
 	}
-	if c.finalSweeps > 0 {
-		ps.SetRejuvenation(c.finalSweeps, 1)
-		ps.Settle()
-	}
+	ps.SettleRefit()
 	if !c.quiet {
 		fmt.Fprintf(stderr, "updating: done, ESS %.0f of %d, %.1fs\n", ps.ESS(), ps.NumParticles(), time.Since(start).Seconds())
 	}

@@ -9,6 +9,7 @@
 // Commands:
 //
 //	fit       fit a segmentation to a file of refit results (batch)
+//	replay    run the service's update path over a file of refits and write the events
 //	simulate  write a fictional category's refit results to a file
 //
 // Run "rivalmix <command> -h" for the flags of each command.
@@ -35,6 +36,7 @@ type command struct {
 func commands() []command {
 	return []command{
 		{"fit", "fit a segmentation to a file of refit results (batch)", runFit},
+		{"replay", "run the service's update path over a file of refits and write the events", runReplay},
 		{"simulate", "write a fictional category's refit results to a file", runSimulate},
 	}
 }
