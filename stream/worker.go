@@ -25,16 +25,20 @@ type WorkerConfig struct {
 	// state, so the settle points, and hence the posterior, do not depend
 	// on how messages were grouped into fetches or commits.
 	BatchSize int
+	// Competitors is the category's default L for messages that do not
+	// state it (the decoder's DefaultCompetitors).
+	Competitors int
 }
 
 // DefaultWorkerConfig returns the package defaults of sequential and alerts.
 func DefaultWorkerConfig() WorkerConfig {
 	return WorkerConfig{
-		Particles: sequential.DefaultParticleConfig(),
-		Alerts:    alerts.DefaultConfig(),
-		Summary:   sequential.DefaultSummaryOptions(),
-		Seed:      1,
-		BatchSize: 256,
+		Particles:   sequential.DefaultParticleConfig(),
+		Alerts:      alerts.DefaultConfig(),
+		Summary:     sequential.DefaultSummaryOptions(),
+		Seed:        1,
+		BatchSize:   256,
+		Competitors: 10,
 	}
 }
 

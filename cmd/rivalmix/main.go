@@ -8,9 +8,12 @@
 //
 // Commands:
 //
+//	serve     run the streaming service on NATS JetStream and a bbolt state file
+//	demo      run the service, an embedded NATS server and a simulated category together
 //	fit       fit a segmentation to a file of refit results (batch)
 //	replay    run the service's update path over a file of refits and write the events
-//	simulate  write a fictional category's refit results to a file
+//	simulate  write or publish a fictional category's weekly refit results
+//	inspect   print what a state file holds
 //
 // Run "rivalmix <command> -h" for the flags of each command.
 package main
@@ -35,9 +38,12 @@ type command struct {
 
 func commands() []command {
 	return []command{
+		{"serve", "run the streaming service on NATS JetStream and a bbolt state file", runServe},
+		{"demo", "run the service, an embedded NATS server and a simulated category together", runDemo},
 		{"fit", "fit a segmentation to a file of refit results (batch)", runFit},
 		{"replay", "run the service's update path over a file of refits and write the events", runReplay},
-		{"simulate", "write a fictional category's refit results to a file", runSimulate},
+		{"simulate", "write or publish a fictional category's weekly refit results", runSimulate},
+		{"inspect", "print what a state file holds", runInspect},
 	}
 }
 

@@ -1,0 +1,93 @@
+package alerts
+
+import (
+	"errors"
+	"fmt"
+	"math"
+)
+
+// Sentinel errors; every error returned by the package wraps one of them.
+var (
+	// ErrConfig reports a Config setting out of range.
+	ErrConfig = errors.New("alerts: invalid config")
+	// ErrRefit reports a Refit whose fields disagree with each other
+	// (lengths, product ids, partition, memberships, next-value summaries).
+	ErrRefit = errors.New("alerts: invalid refit")
+	// ErrMemory reports a Memory that cannot have come from Evaluate
+	// (malformed or not yet issued segment ids, bad alert probabilities).
+	ErrMemory = errors.New("alerts: invalid memory")
+	// ErrAssign reports a cost matrix that Assign cannot solve.
+	ErrAssign = errors.New("alerts: invalid assignment matrix")
+	// ErrEvent reports an event that cannot be encoded.
+	ErrEvent = errors.New("alerts: cannot encode event")
+)
+
+// Config holds the per-category alert settings. Start from DefaultConfig;
+// the zero value is not valid.
+type Config struct {
+	// MoveIn, in (0, 1], is the least membership (mean posterior
+	// similarity, sequential.Summary.Membership) to its new segment that
+	// a product needs before its reported segment changes.
+	MoveIn float64
+	// MoveOut, in [0, MoveIn), is the most membership to the segment it
+	// is reported in that a product may keep and still move out. The gap
+	// between MoveOut and MoveIn is the hysteresis band that keeps a
+	// product between two segments from flapping.
+	MoveOut float64
+	// Confirm >= 1 is the number of consecutive refits at which a product
+	// must meet the MoveIn and MoveOut conditions towards the same segment
+	// before its reported segment changes (the move is reported at the
+	// last of them). 1 moves at the first crossing. Each refit replaces a
+	// product's datum, and a fresh datum from the product's own segment now
+	// and then looks confidently like another one (memberships near 1, so
+	// no membership band can tell it from a real move); such a blip is
+	// gone at the next refit, whereas a real move persists. Confirm = 2
+	// filters the blips at the cost of reporting real moves one refit
+	// later (see the simulation check in simulation_test.go).
+	Confirm int
+	// Threshold, a relative cross-elasticity > 0, is the t of the
+	// missed-competitor rule P(next value > t) >= AlertProb. It must equal
+	// the threshold the summary was computed at
+	// (sequential.SummaryOptions.Threshold).
+	Threshold float64
+	// AlertProb, in (0, 1], is the probability q at or above which a
+	// product is said to have probably missed a competitor.
+	AlertProb float64
+	// RealertMargin, in (0, 1), is how far the probability must rise
+	// above the last alert's before a product is alerted again, and how
+	// far below AlertProb it must fall before the alert is cleared.
+	RealertMargin float64
+	// SplitShare, in (0, 0.5], is the least share of a previous segment's
+	// (still present) members that must go to each of two new segments
+	// for a split to be reported, and that each of two previous segments
+	// must send to one new segment for a merge.
+	SplitShare float64
+}
+
+// DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
+// 0.25, AlertProb 0.5, RealertMargin 0.1 and SplitShare 0.3.
+func DefaultConfig() Config {
+	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3}
+}
+
+// Validate reports the first setting out of range; errors wrap ErrConfig
+// and name the setting.
+func (c Config) Validate() error {
+	switch {
+	case !(c.MoveIn > 0 && c.MoveIn <= 1):
+		return fmt.Errorf("%w: move_in %v, want in (0, 1]", ErrConfig, c.MoveIn)
+	case !(c.MoveOut >= 0 && c.MoveOut < c.MoveIn):
+		return fmt.Errorf("%w: move_out %v, want in [0, move_in %v)", ErrConfig, c.MoveOut, c.MoveIn)
+	case c.Confirm < 1:
+		return fmt.Errorf("%w: confirm %d, want >= 1", ErrConfig, c.Confirm)
+	case !(c.Threshold > 0) || math.IsInf(c.Threshold, 1):
+		return fmt.Errorf("%w: threshold %v, want finite and > 0", ErrConfig, c.Threshold)
+	case !(c.AlertProb > 0 && c.AlertProb <= 1):
+		return fmt.Errorf("%w: alert_prob %v, want in (0, 1]", ErrConfig, c.AlertProb)
+	case !(c.RealertMargin > 0 && c.RealertMargin < 1):
+		return fmt.Errorf("%w: realert_margin %v, want in (0, 1)", ErrConfig, c.RealertMargin)
+	case !(c.SplitShare > 0 && c.SplitShare <= 0.5):
+		return fmt.Errorf("%w: split_share %v, want in (0, 0.5]", ErrConfig, c.SplitShare)
+	}
+	return nil
+}

@@ -1,0 +1,349 @@
+package alerts
+
+import (
+	"fmt"
+	"math"
+	"slices"
+	"strings"
+
+	"rivalmix/sequential"
+)
+
+// Refit is what Evaluate needs from one settled refit of a category.
+// Products, Data and the per-product slices of Summary share one order
+// (sequential.Particles.Products, Data and Summarize over Draws).
+type Refit struct {
+	// Category and Refit identify the model and the refit; both enter
+	// every event id, so they must be non-empty.
+	Category string
+	Refit    string
+	// Products are the ids of every product present, distinct and
+	// non-empty; a product of the last refit that is missing here was
+	// withdrawn and is forgotten.
+	Products []string
+	// Data are the products' data (reported values and L).
+	Data []*sequential.Datum
+	// Summary is sequential.Summarize over the settled particles, at
+	// threshold Config.Threshold.
+	Summary sequential.Summary
+	// ESS is the particles' effective sample size (>= 0), Particles
+	// their number P and Diversity their number of distinct ancestors;
+	// they pass through to the refit summary.
+	ESS       float64
+	Particles int
+	Diversity int
+	// MeanSurprise is the mean log predictive density (nats) of the
+	// data the refit added or replaced; NaN when it changed none.
+	MeanSurprise float64
+}
+
+// Outcome is the result of Evaluate.
+type Outcome struct {
+	// Memory is the memory to keep for the next refit.
+	Memory Memory
+	// Events are in a fixed order: retired, born, split, merged (each by
+	// segment id), then per product in id order its moved and its missed
+	// or cleared event, then the refit summary last.
+	Events []Event
+	// Labels[i] is the reported segment id of Products[i].
+	Labels []string
+	// Point[i] is the id of Products[i]'s point segment.
+	Point []string
+	// SegmentIDs[c] is the id of point segment c of the summary.
+	SegmentIDs []string
+	// Summary is the body of the summary event.
+	Summary RefitSummary
+}
+
+// Evaluate runs the alert rules of one refit against the memory of the
+// previous ones and returns the new memory and the events. It is a pure
+// function: prev is not modified, and equal inputs give equal outputs,
+// event order included.
+//
+// Segment ids: the point partition is matched to the previous labelled
+// point partition (labelSegments). Moves: a product's reported segment
+// changes to the id of its point segment only when its membership there
+// is >= MoveIn and its membership to the point segment now carrying its
+// reported id is <= MoveOut (0 when that id retired), and only once that
+// has held towards the same segment for Config.Confirm refits in a row
+// (at once when the reported segment retired); a new product takes its
+// point segment without an event. Missed competitors: see the Missed and
+// Cleared event types and Config.
+//
+// Errors wrap ErrConfig, ErrMemory or ErrRefit and name the field.
+func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
+	if err := cfg.Validate(); err != nil {
+		return Outcome{}, err
+	}
+	if err := prev.Validate(); err != nil {
+		return Outcome{}, err
+	}
+	if err := r.validate(cfg); err != nil {
+		return Outcome{}, err
+	}
+	sum := &r.Summary
+	k := len(sum.Segments)
+	lab := labelSegments(prev.Point, prev.Issued, r.Products, sum.Partition, k, cfg.SplitShare)
+
+	out := Outcome{
+		Memory: Memory{Issued: lab.issued, Refit: r.Refit, Point: make(map[string]string, len(r.Products)),
+			Reported: make(map[string]string, len(r.Products)), Pending: make(map[string]PendingMove),
+			Alert: make(map[string]AlertMemory)},
+		Labels:     make([]string, len(r.Products)),
+		Point:      make([]string, len(r.Products)),
+		SegmentIDs: lab.ids,
+	}
+	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: len(r.Products), Segments: k,
+		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: finiteOrNil(r.MeanSurprise)}
+	emit := func(kind Kind, subject string, data any) {
+		out.Events = append(out.Events, NewEvent(r.Category, r.Refit, kind, subject, data))
+	}
+
+	// Segment events.
+	for _, ret := range lab.retired {
+		body := Retired{Category: r.Category, Refit: r.Refit, Segment: ret.id, Size: ret.size}
+		if ret.successor >= 0 {
+			body.Successor = lab.ids[ret.successor]
+		}
+		emit(KindRetired, ret.id, body)
+	}
+	for _, c := range lab.born {
+		seg := sum.Segments[c]
+		body := Born{Category: r.Category, Refit: r.Refit, Segment: lab.ids[c], Size: len(seg.Members),
+			Medians: definedPrefix(seg.Median[:]), MeanReported: seg.MeanReported}
+		emit(KindBorn, lab.ids[c], body)
+	}
+	for _, sp := range lab.splits {
+		sp.Category, sp.Refit = r.Category, r.Refit
+		emit(KindSplit, sp.Segment, sp)
+	}
+	for _, mg := range lab.merges {
+		mg.Category, mg.Refit = r.Category, r.Refit
+		emit(KindMerged, mg.Segment, mg)
+	}
+	rs.Births, rs.Retirements = len(lab.born), len(lab.retired)
+	rs.Splits, rs.Merges = len(lab.splits), len(lab.merges)
+
+	// Product events, in product id order.
+	order := make([]int, len(r.Products))
+	for i := range order {
+		order[i] = i
+	}
+	slices.SortFunc(order, func(a, b int) int { return strings.Compare(r.Products[a], r.Products[b]) })
+	for _, i := range order {
+		p := r.Products[i]
+		c := sum.Partition[i]
+		point := lab.ids[c]
+		rep := point
+		if old, ok := prev.Reported[p]; ok && old != point {
+			rep = old
+			in := sum.Membership[i][c]
+			outOf, retired := 0.0, true
+			if oc, live := lab.live[old]; live {
+				outOf, retired = sum.Membership[i][oc], false
+			}
+			if in >= cfg.MoveIn && outOf <= cfg.MoveOut {
+				count := 1
+				if pm, ok := prev.Pending[p]; ok && pm.To == point {
+					count = pm.Count + 1
+				}
+				// A product whose segment retired has nothing to flap
+				// back to and is not held for confirmation.
+				if count >= cfg.Confirm || retired {
+					rep = point
+					rs.Moves++
+					emit(KindMoved, p, Moved{Category: r.Category, Refit: r.Refit, Product: p, From: old, To: point,
+						FromMembership: outOf, ToMembership: in, FromRetired: retired})
+				} else {
+					out.Memory.Pending[p] = PendingMove{To: point, Count: count}
+					rs.Pending++
+				}
+			}
+		}
+		out.Labels[i], out.Point[i] = rep, point
+		out.Memory.Point[p], out.Memory.Reported[p] = point, rep
+
+		// The segment whose decay the alert quotes is the reported one
+		// while it lives, else the point segment.
+		segIdx := c
+		if oc, live := lab.live[rep]; live {
+			segIdx = oc
+		}
+		am, had := prev.Alert[p]
+		ev, next, changed := missedRule(cfg, am, had, sum.Next[i])
+		if changed {
+			next.Refit = r.Refit
+		}
+		switch ev {
+		case KindMissed:
+			body := Missed{Category: r.Category, Refit: r.Refit, Product: p, Segment: rep, Threshold: cfg.Threshold,
+				Probability: sum.Next[i].PExceed, Median: sum.Next[i].Median, Lo: sum.Next[i].Lo, Hi: sum.Next[i].Hi,
+				Reported: slices.Clone(r.Data[i].Values()), Competitors: r.Data[i].L(),
+				TypicalReported: sum.Segments[segIdx].MeanReported}
+			if had && am.Active {
+				body.Previous = &am.Probability
+			}
+			rs.Alerts++
+			emit(KindMissed, p, body)
+		case KindCleared:
+			body := Cleared{Category: r.Category, Refit: r.Refit, Product: p, Segment: rep, Threshold: cfg.Threshold,
+				Probability: next.Probability, Alerted: am.Probability, NoNextValue: !sum.Next[i].Defined}
+			rs.Clears++
+			emit(KindCleared, p, body)
+		}
+		if had || changed {
+			out.Memory.Alert[p] = next
+		}
+		if next.Active {
+			rs.ActiveAlerts++
+		}
+	}
+	rs.ARI = previousARI(prev.Point, r.Products, out.Point)
+	out.Summary = rs
+	emit(KindSummary, r.Category, rs)
+	return out, nil
+}
+
+// missedRule applies the missed-competitor rule to one product whose
+// memory is am (had false for none). It returns the event kind to emit
+// ("" for none), the memory to keep and whether an event changed it.
+func missedRule(cfg Config, am AlertMemory, had bool, next sequential.NextSummary) (Kind, AlertMemory, bool) {
+	active := had && am.Active
+	if !next.Defined {
+		if active {
+			return KindCleared, AlertMemory{Active: false, Probability: 0}, true
+		}
+		return "", am, false
+	}
+	p := next.PExceed
+	switch {
+	case !active && p >= cfg.AlertProb:
+		return KindMissed, AlertMemory{Active: true, Probability: p}, true
+	case active && p >= am.Probability+cfg.RealertMargin:
+		return KindMissed, AlertMemory{Active: true, Probability: p}, true
+	case active && p < cfg.AlertProb-cfg.RealertMargin:
+		return KindCleared, AlertMemory{Active: false, Probability: p}, true
+	}
+	return "", am, false
+}
+
+// previousARI is the adjusted Rand index between the previous and the new
+// point partitions over the products in both, or nil when fewer than two.
+func previousARI(prevPoint map[string]string, products, point []string) *float64 {
+	var a, b []int
+	names := map[string]int{}
+	num := func(id string) int {
+		n, ok := names[id]
+		if !ok {
+			n = len(names)
+			names[id] = n
+		}
+		return n
+	}
+	for i, p := range products {
+		if old, ok := prevPoint[p]; ok {
+			a = append(a, num("prev:"+old))
+			b = append(b, num("new:"+point[i]))
+		}
+	}
+	if len(a) < 2 {
+		return nil
+	}
+	return finiteOrNil(sequential.AdjustedRand(a, b))
+}
+
+// definedPrefix returns the leading values of x up to the first NaN.
+func definedPrefix(x []float64) []float64 {
+	out := make([]float64, 0, len(x))
+	for _, v := range x {
+		if math.IsNaN(v) || math.IsInf(v, 0) {
+			break
+		}
+		out = append(out, v)
+	}
+	return out
+}
+
+// validate checks that the refit's fields agree with each other and with
+// cfg; errors wrap ErrRefit and name the field.
+func (r *Refit) validate(cfg Config) error {
+	if r.Category == "" {
+		return fmt.Errorf("%w: category is empty", ErrRefit)
+	}
+	if r.Refit == "" {
+		return fmt.Errorf("%w: refit id is empty", ErrRefit)
+	}
+	n := len(r.Products)
+	s := &r.Summary
+	for _, f := range []struct {
+		name string
+		len  int
+	}{{"data", len(r.Data)}, {"summary.partition", len(s.Partition)},
+		{"summary.membership", len(s.Membership)}, {"summary.next", len(s.Next)}} {
+		if f.len != n {
+			return fmt.Errorf("%w: %s has %d entries for %d products", ErrRefit, f.name, f.len, n)
+		}
+	}
+	if !(r.ESS >= 0) || math.IsInf(r.ESS, 1) {
+		return fmt.Errorf("%w: ess %v, want finite and >= 0", ErrRefit, r.ESS)
+	}
+	if r.Particles < 0 || r.Diversity < 0 {
+		return fmt.Errorf("%w: particles %d, diversity %d, want >= 0", ErrRefit, r.Particles, r.Diversity)
+	}
+	k := len(s.Segments)
+	size := make([]int, k)
+	seen := make(map[string]bool, n)
+	tol := 1e-9 * cfg.Threshold
+	for i, p := range r.Products {
+		if p == "" {
+			return fmt.Errorf("%w: products[%d] is empty", ErrRefit, i)
+		}
+		if seen[p] {
+			return fmt.Errorf("%w: products[%d] = %q appears twice", ErrRefit, i, p)
+		}
+		seen[p] = true
+		if r.Data[i] == nil {
+			return fmt.Errorf("%w: data[%d] (product %q) is nil", ErrRefit, i, p)
+		}
+		c := s.Partition[i]
+		if c < 0 || c >= k {
+			return fmt.Errorf("%w: summary.partition[%d] = %d, want 0..%d", ErrRefit, i, c, k-1)
+		}
+		size[c]++
+		if len(s.Membership[i]) != k {
+			return fmt.Errorf("%w: summary.membership[%d] has %d entries for %d segments", ErrRefit, i, len(s.Membership[i]), k)
+		}
+		for j, m := range s.Membership[i] {
+			if !(m >= 0 && m <= 1) {
+				return fmt.Errorf("%w: summary.membership[%d][%d] = %v, want in [0, 1]", ErrRefit, i, j, m)
+			}
+		}
+		nx := s.Next[i]
+		if nx.Defined != (r.Data[i].N() < r.Data[i].L()) {
+			return fmt.Errorf("%w: summary.next[%d].defined = %v with %d of %d competitors reported", ErrRefit, i, nx.Defined, r.Data[i].N(), r.Data[i].L())
+		}
+		if !nx.Defined {
+			continue
+		}
+		if math.Abs(nx.Threshold-cfg.Threshold) > tol {
+			return fmt.Errorf("%w: summary.next[%d].threshold %v, config threshold %v", ErrRefit, i, nx.Threshold, cfg.Threshold)
+		}
+		if !(nx.PExceed >= 0 && nx.PExceed <= 1) {
+			return fmt.Errorf("%w: summary.next[%d].pexceed = %v, want in [0, 1]", ErrRefit, i, nx.PExceed)
+		}
+		for _, q := range []float64{nx.Median, nx.Lo, nx.Hi} {
+			if math.IsNaN(q) || math.IsInf(q, 0) || q < 0 {
+				return fmt.Errorf("%w: summary.next[%d] quantiles %v, %v, %v, want finite and >= 0", ErrRefit, i, nx.Lo, nx.Median, nx.Hi)
+			}
+		}
+	}
+	for c, m := range size {
+		if m == 0 {
+			return fmt.Errorf("%w: summary.segments[%d] has no product in summary.partition", ErrRefit, c)
+		}
+		if mr := s.Segments[c].MeanReported; math.IsNaN(mr) || math.IsInf(mr, 0) {
+			return fmt.Errorf("%w: summary.segments[%d].mean_reported = %v, want finite", ErrRefit, c, mr)
+		}
+	}
+	return nil
+}

@@ -1,0 +1,159 @@
+package main
+
+import (
+	"bytes"
+	"flag"
+	"fmt"
+	"os"
+	"strings"
+
+	"go.yaml.in/yaml/v3"
+
+	"rivalmix/sequential"
+	"rivalmix/stream"
+)
+
+// envPrefix names the environment variables that stand in for flags:
+// --state FILE is RIVALMIX_STATE, --http-addr is RIVALMIX_HTTP_ADDR.
+const envPrefix = "RIVALMIX_"
+
+// envName returns the environment variable of a flag.
+func envName(flagName string) string {
+	return envPrefix + strings.ToUpper(strings.ReplaceAll(flagName, "-", "_"))
+}
+
+// applyEnv sets every flag not given on the command line from its
+// environment variable, when set. Call it after Parse.
+func applyEnv(fs *flag.FlagSet) error {
+	given := map[string]bool{}
+	fs.Visit(func(f *flag.Flag) { given[f.Name] = true })
+	var err error
+	fs.VisitAll(func(f *flag.Flag) {
+		if given[f.Name] || err != nil {
+			return
+		}
+		if v, ok := os.LookupEnv(envName(f.Name)); ok {
+			if e := fs.Set(f.Name, v); e != nil {
+				err = fmt.Errorf("%s=%q: %w", envName(f.Name), v, e)
+			}
+		}
+	})
+	return err
+}
+
+// envUsage appends the environment-variable rule to a flag set's help.
+func envUsage(fs *flag.FlagSet) {
+	prev := fs.Usage
+	fs.Usage = func() {
+		prev()
+		fmt.Fprintf(fs.Output(), "\nEvery flag can also be set by an environment variable: %s<FLAG> in upper case\nwith dashes as underscores (--state is %s); the command line wins.\n",
+			envPrefix, envName("state"))
+	}
+}
+
+// modelSettings are the per-category model and alert settings of the
+// optional YAML file (--config). Absent fields keep the defaults.
+//
+//	defaults:
+//	  particles: 256
+//	  competitors: 10
+//	categories:
+//	  breakfast-cereal:
+//	    particles: 128
+//	    threshold: 0.3
+type modelSettings struct {
+	Particles        *int     `yaml:"particles"`
+	Competitors      *int     `yaml:"competitors"`
+	BatchSize        *int     `yaml:"batch_size"`
+	RefitSweeps      *int     `yaml:"refit_sweeps"`
+	ESSFraction      *float64 `yaml:"ess_fraction"`
+	Resampler        *string  `yaml:"resampler"`
+	Threshold        *float64 `yaml:"threshold"`
+	AlertProbability *float64 `yaml:"alert_probability"`
+	MoveIn           *float64 `yaml:"move_in"`
+	MoveOut          *float64 `yaml:"move_out"`
+	Alpha            *struct {
+		Shape float64 `yaml:"shape"`
+		Rate  float64 `yaml:"rate"`
+	} `yaml:"alpha_prior"`
+}
+
+type settingsFile struct {
+	Defaults   modelSettings            `yaml:"defaults"`
+	Categories map[string]modelSettings `yaml:"categories"`
+}
+
+// apply overlays s on w.
+func (s modelSettings) apply(w stream.WorkerConfig) (stream.WorkerConfig, error) {
+	if s.Particles != nil {
+		w.Particles.Particles = *s.Particles
+	}
+	if s.Competitors != nil {
+		w.Competitors = *s.Competitors
+	}
+	if s.BatchSize != nil {
+		w.BatchSize = *s.BatchSize
+	}
+	if s.RefitSweeps != nil {
+		w.Particles.RefitSweeps = *s.RefitSweeps
+	}
+	if s.ESSFraction != nil {
+		w.Particles.ESSFraction = *s.ESSFraction
+	}
+	if s.Resampler != nil {
+		r, err := sequential.ParseResampler(*s.Resampler)
+		if err != nil {
+			return w, err
+		}
+		w.Particles.Resampler = r
+	}
+	if s.Threshold != nil {
+		w.Alerts.Threshold = *s.Threshold
+		w.Summary.Threshold = *s.Threshold
+	}
+	if s.AlertProbability != nil {
+		w.Alerts.AlertProb = *s.AlertProbability
+	}
+	if s.MoveIn != nil {
+		w.Alerts.MoveIn = *s.MoveIn
+	}
+	if s.MoveOut != nil {
+		w.Alerts.MoveOut = *s.MoveOut
+	}
+	if s.Alpha != nil {
+		w.Particles.Prior.AlphaShape, w.Particles.Prior.AlphaRate = s.Alpha.Shape, s.Alpha.Rate
+		w.Summary.Prior = w.Particles.Prior
+	}
+	return w, nil
+}
+
+// loadSettings reads the YAML settings file (strict: unknown keys are
+// errors) and returns the default worker settings and per-category ones.
+func loadSettings(path string, base stream.WorkerConfig) (stream.WorkerConfig, map[string]stream.WorkerConfig, error) {
+	if path == "" {
+		return base, nil, nil
+	}
+	raw, err := os.ReadFile(path)
+	if err != nil {
+		return base, nil, fmt.Errorf("config: %w", err)
+	}
+	var f settingsFile
+	dec := yaml.NewDecoder(bytes.NewReader(raw))
+	dec.KnownFields(true)
+	if err := dec.Decode(&f); err != nil {
+		return base, nil, fmt.Errorf("config %s: %w", path, err)
+	}
+	def, err := f.Defaults.apply(base)
+	if err != nil {
+		return base, nil, fmt.Errorf("config %s: defaults: %w", path, err)
+	}
+	per := map[string]stream.WorkerConfig{}
+	for cat, s := range f.Categories {
+		w, err := s.apply(def)
+		if err != nil {
+			return base, nil, fmt.Errorf("config %s: category %s: %w", path, cat, err)
+		}
+		per[cat] = w
+	}
+	return def, per, nil
+}

@@ -1,0 +1,266 @@
+package main
+
+import (
+	"context"
+	"errors"
+	"flag"
+	"fmt"
+	"log/slog"
+	"net"
+	"os"
+	"path/filepath"
+	"strconv"
+	"sync"
+	"time"
+
+	"github.com/nats-io/nats.go"
+	"github.com/nats-io/nats.go/jetstream"
+	"github.com/nats-io/nats.go/micro"
+	"github.com/prometheus/client_golang/prometheus"
+	"github.com/prometheus/client_golang/prometheus/collectors"
+
+	"rivalmix/state"
+	"rivalmix/stream"
+)
+
+// serviceFlags are the flags shared by serve and demo.
+type serviceFlags struct {
+	natsURL, listen, stateFile, httpAddr, configFile string
+	conn                                             stream.ConnectOptions
+	seed                                             uint64
+	particles, batch, fetch                          int
+	fetchWait, quiet                                 time.Duration
+	logLevel                                         string
+}
+
+func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
+	sc := stream.DefaultServiceConfig()
+	fs.StringVar(&f.natsURL, "nats", "", "NATS server URL; empty starts an embedded server with JetStream (store beside the state file, every write fsynced)")
+	fs.StringVar(&f.listen, "listen", defaultListen, "client address of the embedded server (host:port; port -1 picks a free one)")
+	fs.StringVar(&f.stateFile, "state", defaultState, "bbolt state file of this worker")
+	fs.StringVar(&f.httpAddr, "http-addr", "127.0.0.1:8080", "address of the HTTP server (metrics, health, read API, dashboard); empty disables it")
+	fs.StringVar(&f.configFile, "config", "", "optional YAML file of per-category model and alert settings")
+	fs.StringVar(&f.conn.CredsFile, "creds", "", "NATS user credentials file")
+	fs.StringVar(&f.conn.NKeyFile, "nkey", "", "NATS NKey seed file")
+	fs.StringVar(&f.conn.User, "user", "", "NATS user name")
+	fs.StringVar(&f.conn.Password, "password", "", "NATS password")
+	fs.StringVar(&f.conn.Token, "token", "", "NATS token")
+	fs.StringVar(&f.conn.TLSCert, "tls-cert", "", "client certificate (PEM) for NATS TLS")
+	fs.StringVar(&f.conn.TLSKey, "tls-key", "", "client key (PEM) for NATS TLS")
+	fs.StringVar(&f.conn.TLSCA, "tls-ca", "", "root CAs (PEM) to verify the NATS server")
+	fs.Uint64Var(&f.seed, "seed", sc.Worker.Seed, "random seed of new categories")
+	fs.IntVar(&f.particles, "particles", sc.Worker.Particles.Particles, "particles per category")
+	fs.IntVar(&f.batch, "batch", sc.Worker.BatchSize, "changed products per micro-batch (a settle after each)")
+	fs.IntVar(&f.fetch, "fetch", sc.FetchSize, "messages per fetch (one commit and ack each)")
+	fs.DurationVar(&f.fetchWait, "fetch-wait", sc.FetchWait, "longest wait for a fetch to fill")
+	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
+	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
+}
+
+func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
+	sc := stream.DefaultServiceConfig()
+	sc.Worker.Seed = f.seed
+	sc.Worker.Particles.Particles = f.particles
+	sc.Worker.BatchSize = f.batch
+	sc.FetchSize = f.fetch
+	sc.FetchWait = f.fetchWait
+	sc.QuietPeriod = f.quiet
+	def, per, err := loadSettings(f.configFile, sc.Worker)
+	if err != nil {
+		return sc, err
+	}
+	sc.Worker, sc.PerCategory = def, per
+	if sc.Bus.MaxAckPending == 0 || sc.Bus.MaxAckPending <= sc.FetchSize {
+		sc.Bus.MaxAckPending = 4 * sc.FetchSize
+	}
+	return sc, sc.Validate()
+}
+
+func newLogger(level string, w *os.File) (*slog.Logger, error) {
+	var l slog.Level
+	if err := l.UnmarshalText([]byte(level)); err != nil {
+		return nil, fmt.Errorf("--log-level %q: want debug, info, warn or error", level)
+	}
+	return slog.New(slog.NewTextHandler(w, &slog.HandlerOptions{Level: l})), nil
+}
+
+// running is a started service with everything around it.
+type running struct {
+	lg       *slog.Logger
+	embedded *stream.Embedded
+	nc       *nats.Conn
+	js       jetstream.JetStream
+	store    *state.Store
+	svc      *stream.Service
+	pub      *stream.Publisher
+	views    *stream.Views
+	micro    micro.Service
+	httpLn   net.Listener
+	stopHTTP context.CancelFunc
+	natsURL  string
+
+	wg   sync.WaitGroup
+	errs chan error
+}
+
+// start builds and starts every component; run the returned service's
+// loops with (*running).run.
+func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *slog.Logger) (*running, error) {
+	r := &running{lg: lg, errs: make(chan error, 4)}
+	ok := false
+	defer func() {
+		if !ok {
+			r.close()
+		}
+	}()
+	var err error
+	if r.store, err = state.Open(f.stateFile, state.Options{}); err != nil {
+		return nil, err
+	}
+	r.natsURL = f.natsURL
+	if r.natsURL == "" {
+		host, portStr, err := net.SplitHostPort(f.listen)
+		if err != nil {
+			return nil, fmt.Errorf("--listen %q: %w", f.listen, err)
+		}
+		port, err := strconv.Atoi(portStr)
+		if err != nil {
+			return nil, fmt.Errorf("--listen %q: port: %w", f.listen, err)
+		}
+		r.embedded, err = stream.StartEmbedded(ctx, stream.EmbeddedConfig{
+			StoreDir: f.stateFile + ".jetstream", Host: host, Port: port, NoLog: true}, lg)
+		if err != nil {
+			return nil, err
+		}
+		r.natsURL = r.embedded.ClientURL()
+		lg.Info("embedded NATS server started", "url", r.natsURL, "store", f.stateFile+".jetstream")
+	}
+	conn := f.conn
+	conn.Name = "rivalmix"
+	if r.nc, err = stream.Connect(ctx, r.natsURL, conn, lg); err != nil {
+		return nil, err
+	}
+	if r.js, err = jetstream.New(r.nc); err != nil {
+		return nil, fmt.Errorf("jetstream: %w", err)
+	}
+	if err := stream.EnsureStreams(ctx, r.js, sc.Bus); err != nil {
+		return nil, err
+	}
+	reg := prometheus.NewRegistry()
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	var svc *stream.Service
+	metrics := stream.NewMetrics(reg,
+		func() float64 {
+			n, err := r.store.OutboxLen()
+			if err != nil {
+				return -1
+			}
+			return float64(n)
+		},
+		func() float64 {
+			c, err := r.js.Consumer(context.Background(), sc.Bus.InputStream, sc.Bus.Durable)
+			if err != nil {
+				return -1
+			}
+			info := c.CachedInfo()
+			if info == nil {
+				return -1
+			}
+			return float64(info.NumPending + uint64(info.NumAckPending))
+		})
+	r.views = stream.NewViews()
+	if r.pub, err = stream.NewPublisher(r.store, r.js, stream.DefaultPublisherConfig(), lg); err != nil {
+		return nil, err
+	}
+	if svc, err = stream.NewService(lg, r.js, r.store, metrics, r.views, r.pub, sc); err != nil {
+		return nil, err
+	}
+	r.svc = svc
+	if r.micro, err = stream.StartMicro(r.nc, r.views); err != nil {
+		return nil, err
+	}
+	if f.httpAddr != "" {
+		if r.httpLn, err = stream.Listen(f.httpAddr); err != nil {
+			return nil, err
+		}
+		h := stream.NewHTTPHandler(r.views, reg, svc.Ready, lg)
+		var hctx context.Context
+		hctx, r.stopHTTP = context.WithCancel(context.Background())
+		r.wg.Add(1)
+		go func() {
+			defer r.wg.Done()
+			if err := stream.Serve(hctx, r.httpLn, h, lg); err != nil {
+				r.errs <- fmt.Errorf("http: %w", err)
+			}
+		}()
+	}
+	ok = true
+	return r, nil
+}
+
+// run runs the service loop and the outbox publisher until ctx ends or
+// one of them fails, then drains the outbox once more.
+func (r *running) run(ctx context.Context) error {
+	ctx, cancel := context.WithCancel(ctx)
+	defer cancel()
+	r.wg.Add(2)
+	go func() {
+		defer r.wg.Done()
+		if err := r.pub.Run(ctx); err != nil && !errors.Is(err, context.Canceled) {
+			r.errs <- fmt.Errorf("publisher: %w", err)
+		}
+	}()
+	svcDone := make(chan error, 1)
+	go func() {
+		defer r.wg.Done()
+		svcDone <- r.svc.Run(ctx)
+	}()
+	var err error
+	select {
+	case err = <-svcDone:
+	case err = <-r.errs:
+		cancel()
+		<-svcDone
+	}
+	cancel()
+	// Graceful path: everything committed is published before we stop.
+	fctx, fcancel := context.WithTimeout(context.Background(), 10*time.Second)
+	defer fcancel()
+	if _, ferr := r.pub.Flush(fctx); ferr != nil && err == nil {
+		err = fmt.Errorf("final outbox flush: %w", ferr)
+	}
+	return err
+}
+
+// close stops everything that was started, in reverse order.
+func (r *running) close() {
+	if r.micro != nil {
+		_ = r.micro.Stop()
+	}
+	if r.nc != nil {
+		_ = r.nc.Drain()
+		for i := 0; i < 50 && !r.nc.IsClosed(); i++ {
+			time.Sleep(20 * time.Millisecond)
+		}
+	}
+	if r.stopHTTP != nil {
+		r.stopHTTP()
+	}
+	r.wg.Wait()
+	if r.embedded != nil {
+		r.embedded.Shutdown()
+	}
+	if r.store != nil {
+		if err := r.store.Close(); err != nil {
+			r.lg.Warn("close state", "err", err)
+		}
+	}
+}
+
+// absPath is for messages: the state file as the user should find it.
+func absPath(p string) string {
+	if a, err := filepath.Abs(p); err == nil {
+		return a
+	}
+	return p
+}

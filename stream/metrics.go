@@ -1,0 +1,171 @@
+package stream
+
+import (
+	"math"
+	"time"
+
+	"github.com/prometheus/client_golang/prometheus"
+
+	"rivalmix/alerts"
+)
+
+// Outcome is what became of one input message, the label of
+// rivalmix_messages_total.
+type Outcome string
+
+// The outcomes of an input message.
+const (
+	// OutcomeApplied: the message changed the model (or was a control
+	// message that was acted on) and its effect is committed.
+	OutcomeApplied Outcome = "applied"
+	// OutcomeDuplicate: a redelivery of an applied message, acked without
+	// effect.
+	OutcomeDuplicate Outcome = "duplicate"
+	// OutcomeRejected: the message broke the input contract and went to
+	// the rejected stream.
+	OutcomeRejected Outcome = "rejected"
+	// OutcomeFailed: the message could not be handled this time and is
+	// left for redelivery (or, at MaxDeliver, copied to the rejected
+	// stream).
+	OutcomeFailed Outcome = "failed"
+)
+
+var outcomes = []Outcome{OutcomeApplied, OutcomeDuplicate, OutcomeRejected, OutcomeFailed}
+
+// Metrics are the service's Prometheus metrics. Build them with
+// [NewMetrics] on a registry that main owns; nothing is registered on
+// import. The methods are safe for concurrent use.
+type Metrics struct {
+	messages  *prometheus.CounterVec
+	update    prometheus.Histogram
+	settle    prometheus.Histogram
+	commit    prometheus.Histogram
+	essRatio  *prometheus.GaugeVec
+	segments  *prometheus.GaugeVec
+	moves     *prometheus.CounterVec
+	alerts    *prometheus.CounterVec
+	surprise  *prometheus.GaugeVec
+	refits    *prometheus.CounterVec
+	gaugeFunc []prometheus.Collector
+}
+
+// NewMetrics creates the metrics and registers them with reg (not
+// registered when reg is nil). outboxPending and consumerPending back the
+// rivalmix_outbox_pending and rivalmix_consumer_pending gauges and are
+// called at every scrape, so they should return a value the caller already
+// keeps (a count, not a network round trip); a nil function leaves its
+// gauge out. It panics if reg already holds metrics of the same names,
+// which is a wiring mistake.
+func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func() float64) *Metrics {
+	m := &Metrics{
+		messages: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_messages_total",
+			Help: "Input messages handled, by outcome (applied, duplicate, rejected, failed).",
+		}, []string{"outcome"}),
+		update: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_update_seconds",
+			Help:    "Time to apply one input message to its category's particle system, in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-5, 4, 10), // 10 us .. 2.6 s
+		}),
+		settle: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_settle_seconds",
+			Help:    "Time to settle a category (resample, rejuvenate, summarise, evaluate alerts), in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-3, 3, 10), // 1 ms .. 20 s
+		}),
+		commit: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_commit_seconds",
+			Help:    "Time to commit one micro-batch to the state file, fsync included, in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-4, 3, 10), // 0.1 ms .. 2 s
+		}),
+		essRatio: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "rivalmix_ess_ratio",
+			Help: "Effective sample size of the category's particles divided by their number, in (0, 1], at the last refit.",
+		}, []string{"category"}),
+		segments: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "rivalmix_segments",
+			Help: "Segments in the category's point segmentation at the last refit.",
+		}, []string{"category"}),
+		moves: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_segment_moves_total",
+			Help: "Products whose reported segment changed.",
+		}, []string{"category"}),
+		alerts: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_alerts_total",
+			Help: "Missed-competitor alerts raised.",
+		}, []string{"category"}),
+		surprise: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "rivalmix_surprise_mean",
+			Help: "Mean negative log predictive density, in nats, of the data the last refit of the category added or replaced.",
+		}, []string{"category"}),
+		refits: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_refits_total",
+			Help: "Refits completed.",
+		}, []string{"category"}),
+	}
+	for _, o := range outcomes {
+		m.messages.WithLabelValues(string(o)) // start every outcome at 0
+	}
+	if outboxPending != nil {
+		m.gaugeFunc = append(m.gaugeFunc, prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+			Name: "rivalmix_outbox_pending",
+			Help: "Events committed to the outbox and not yet acknowledged by the output stream.",
+		}, outboxPending))
+	}
+	if consumerPending != nil {
+		m.gaugeFunc = append(m.gaugeFunc, prometheus.NewGaugeFunc(prometheus.GaugeOpts{
+			Name: "rivalmix_consumer_pending",
+			Help: "Input messages in the stream not yet delivered to the worker's consumer.",
+		}, consumerPending))
+	}
+	if reg != nil {
+		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
+			m.moves, m.alerts, m.surprise, m.refits)
+		reg.MustRegister(m.gaugeFunc...)
+	}
+	return m
+}
+
+// CountMessages adds n messages with the given outcome.
+func (m *Metrics) CountMessages(o Outcome, n int) {
+	if n > 0 {
+		m.messages.WithLabelValues(string(o)).Add(float64(n))
+	}
+}
+
+// ObserveUpdate records the time one message took to apply.
+func (m *Metrics) ObserveUpdate(d time.Duration) { m.update.Observe(d.Seconds()) }
+
+// ObserveSettle records the time a category took to settle.
+func (m *Metrics) ObserveSettle(d time.Duration) { m.settle.Observe(d.Seconds()) }
+
+// ObserveCommit records the time one state commit took.
+func (m *Metrics) ObserveCommit(d time.Duration) { m.commit.Observe(d.Seconds()) }
+
+// ObserveRefit records a completed refit: it counts the refit, its moved
+// and missed events, and sets the category's segment count, its ESS ratio
+// (rep.ESS / particles, skipped when particles <= 0) and its mean surprise
+// (skipped when the refit changed no datum or the value is not finite).
+func (m *Metrics) ObserveRefit(rep RefitReport, particles int) {
+	cat := rep.Category
+	m.refits.WithLabelValues(cat).Inc()
+	m.segments.WithLabelValues(cat).Set(float64(len(rep.Summary.Segments)))
+	if particles > 0 {
+		m.essRatio.WithLabelValues(cat).Set(rep.ESS / float64(particles))
+	}
+	if rep.Changes > 0 && !math.IsNaN(rep.MeanSurprise) && !math.IsInf(rep.MeanSurprise, 0) {
+		m.surprise.WithLabelValues(cat).Set(rep.MeanSurprise)
+	}
+	var moves, missed int
+	for _, ev := range rep.Events {
+		switch ev.Kind {
+		case alerts.KindMoved:
+			moves++
+		case alerts.KindMissed:
+			missed++
+		}
+	}
+	// Add(0) still creates the series, so a category shows 0 rather
+	// than nothing until its first move or alert.
+	m.moves.WithLabelValues(cat).Add(float64(moves))
+	m.alerts.WithLabelValues(cat).Add(float64(missed))
+}
