@@ -23,6 +23,8 @@ import (
 //	particles: count, then per particle log weight, origin, alpha, label
 //	  buffer index, segment count, per segment log a, log k, log s, size,
 //	  reported, considered, then its free-segment list
+//	kept-draws flag byte; if 1, per particle a count and per kept draw its
+//	  log weight, alpha, segment count and thetas, label count and labels
 const encodingVersion = 1
 
 // ErrEncoding reports a particle-system encoding that cannot be decoded.
@@ -87,6 +89,7 @@ func (ps *Particles) Encode() []byte {
 	for _, s := range ps.touched {
 		e.i(s)
 	}
+
 	// Label buffers shared by several particles are written once.
 	bufIndex := map[*labelBuf]int{}
 	var bufs []*labelBuf
@@ -121,6 +124,30 @@ func (ps *Particles) Encode() []byte {
 		e.i(len(st.free))
 		for _, c := range st.free {
 			e.i(int(c))
+		}
+	}
+	// The draws kept by the latest settle, while still valid, so that a
+	// restored system reports the same posterior.
+	if !ps.keptValid {
+		e.b = append(e.b, 0)
+		return e.b
+	}
+	e.b = append(e.b, 1)
+	for _, k := range ps.kept {
+		e.i(len(k))
+		for _, d := range k {
+			e.f(d.LogWeight)
+			e.f(d.Alpha)
+			e.i(len(d.Segments))
+			for _, t := range d.Segments {
+				e.f(t.LogA)
+				e.f(t.LogK)
+				e.f(t.LogS)
+			}
+			e.i(len(d.Labels))
+			for _, v := range d.Labels {
+				e.b = binary.LittleEndian.AppendUint16(e.b, v)
+			}
 		}
 	}
 	return e.b
@@ -174,10 +201,16 @@ func (d *decoder) f(what string) float64 {
 }
 
 func (d *decoder) bytes(what string) []byte {
-	n := d.i(what, len(d.b))
+	v64 := d.u(what)
 	if d.err != nil {
 		return nil
 	}
+	// The limit is what is left after the length prefix itself.
+	if v64 > uint64(len(d.b)) {
+		d.fail(what)
+		return nil
+	}
+	n := int(v64)
 	v := d.b[:n]
 	d.b = d.b[n:]
 	return v
@@ -300,6 +333,10 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		ps.origin[p] = d.i("origin", P-1)
 		st := &State{data: ps.slots, prior: &ps.prior, m: c.Aux, n: ps.n}
 		st.alpha = d.f("alpha")
+		if len(bufs) == 0 {
+			d.fail("label buffers")
+			break
+		}
 		bi := d.i("label buffer index", len(bufs)-1)
 		if d.err != nil {
 			break
@@ -323,6 +360,9 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if d.err != nil {
 		return nil, d.err
 	}
+	if err := ps.decodeKept(d, c.KeepSweeps); err != nil {
+		return nil, err
+	}
 	if len(d.b) != 0 {
 		return nil, fmt.Errorf("%w: %d trailing bytes", ErrEncoding, len(d.b))
 	}
@@ -336,7 +376,48 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 // check verifies that every particle's labels and segment totals agree
 // with the data: the invariant every operation keeps.
 func (ps *Particles) check() error {
+	seenFree := make([]bool, len(ps.slots))
+	for _, s := range ps.free {
+		if ps.slots[s] != nil || seenFree[s] {
+			return fmt.Errorf("free slot %d holds a product or is listed twice", s)
+		}
+		seenFree[s] = true
+	}
+	for s, d := range ps.slots {
+		if d == nil && !seenFree[s] {
+			return fmt.Errorf("slot %d is empty but not on the free list", s)
+		}
+	}
+	for _, s := range ps.touched {
+		if ps.slots[s] == nil {
+			return fmt.Errorf("touched slot %d holds no product", s)
+		}
+	}
+	if math.IsNaN(ps.logEvidence) {
+		return errors.New("log evidence is NaN")
+	}
+	for p, lw := range ps.logw {
+		if math.IsNaN(lw) || math.IsInf(lw, 0) {
+			return fmt.Errorf("particle %d: log weight %v", p, lw)
+		}
+	}
 	for p, st := range ps.parts {
+		seenSeg := make([]bool, len(st.segs))
+		for _, c := range st.free {
+			if seenSeg[c] {
+				return fmt.Errorf("particle %d: free segment %d listed twice", p, c)
+			}
+			seenSeg[c] = true
+		}
+		for c, g := range st.segs {
+			t := g.theta
+			if g.size > 0 && (!finite(t.LogA) || !finite(t.LogK) || !finite(t.LogS)) {
+				return fmt.Errorf("particle %d: segment %d parameters not finite", p, c)
+			}
+			if (g.size == 0) != seenSeg[c] {
+				return fmt.Errorf("particle %d: segment %d: free list and size disagree", p, c)
+			}
+		}
 		if len(st.labels.l) != len(ps.slots) {
 			return fmt.Errorf("particle %d: %d labels for %d slots", p, len(st.labels.l), len(ps.slots))
 		}
@@ -358,21 +439,60 @@ func (ps *Particles) check() error {
 			rep[c] += d.N()
 			con[c] += d.L()
 		}
-		empty := 0
 		for c, g := range st.segs {
 			if g.size != size[c] || g.reported != rep[c] || g.considered != con[c] {
 				return fmt.Errorf("particle %d: segment %d totals disagree with its members", p, c)
 			}
-			if g.size == 0 {
-				empty++
-			}
 		}
-		if empty != len(st.free) {
-			return fmt.Errorf("particle %d: %d empty segments but %d on the free list", p, empty, len(st.free))
-		}
-		if !(st.alpha > 0) {
+		if !(st.alpha > 0) || math.IsInf(st.alpha, 0) {
 			return fmt.Errorf("particle %d: alpha %v", p, st.alpha)
 		}
 	}
+	return nil
+}
+
+// decodeKept reads the kept draws written after the particles.
+func (ps *Particles) decodeKept(d *decoder, keep int) error {
+	if len(d.b) == 0 {
+		return fmt.Errorf("%w: truncated at kept-draws flag", ErrEncoding)
+	}
+	flag := d.b[0]
+	d.b = d.b[1:]
+	switch flag {
+	case 0:
+		return nil
+	case 1:
+	default:
+		return fmt.Errorf("%w: kept-draws flag %d", ErrEncoding, flag)
+	}
+	ps.kept = make([][]Draw, len(ps.parts))
+	for p := range ps.kept {
+		n := d.i("kept draws", keep)
+		for j := 0; j < n && d.err == nil; j++ {
+			dr := Draw{LogWeight: d.f("kept weight"), Alpha: d.f("kept alpha")}
+			dr.Segments = make([]Theta, d.i("kept segments", MaxSegments))
+			for k := range dr.Segments {
+				dr.Segments[k] = Theta{LogA: d.f("kept log a"), LogK: d.f("kept log k"), LogS: d.f("kept log s")}
+			}
+			nl := d.i("kept labels", ps.n)
+			if d.err != nil || nl != ps.n || len(d.b) < 2*nl {
+				d.fail("kept labels")
+				break
+			}
+			dr.Labels = make([]uint16, nl)
+			for k := range dr.Labels {
+				dr.Labels[k] = binary.LittleEndian.Uint16(d.b[2*k:])
+				if int(dr.Labels[k]) >= len(dr.Segments) {
+					d.fail("kept label")
+				}
+			}
+			d.b = d.b[2*nl:]
+			ps.kept[p] = append(ps.kept[p], dr)
+		}
+	}
+	if d.err != nil {
+		return d.err
+	}
+	ps.keptValid = true
 	return nil
 }

@@ -281,6 +281,23 @@ func (ps *Particles) applyIncrements(incr []float64) float64 {
 	return lp
 }
 
+// logMeanExp returns log sum_p W_p exp(x_p) under the current normalised
+// weights.
+func (ps *Particles) logMeanExp(x []float64) float64 {
+	mw := maxOf(ps.logw)
+	m := math.Inf(-1)
+	for p := range x {
+		m = math.Max(m, ps.logw[p]-mw+x[p])
+	}
+	var num, den float64
+	for p := range x {
+		a := ps.logw[p] - mw
+		den += math.Exp(a)
+		num += math.Exp(a + x[p] - m)
+	}
+	return m + math.Log(num) - math.Log(den)
+}
+
 func maxOf(x []float64) float64 {
 	m := math.Inf(-1)
 	for _, v := range x {
@@ -414,7 +431,14 @@ func (ps *Particles) Remove(id string) error {
 		ps.incr[p] = math.Log(nOthers+st.alpha) - st.predictiveTerms(old)
 		st.n--
 	})
+	before := ps.ESS()
+	ev := ps.logEvidence
 	ps.applyIncrements(ps.incr)
+	// The removal weight is the reciprocal of a predictive density: when
+	// the product had a segment of its own it is heavy-tailed and the ESS
+	// collapses. Resampling alone would leave few distinct ancestors, so
+	// the particles are resampled and moved over every product at once.
+	collapsed := ps.ESS() < ps.cfg.ESSFraction*before
 	ps.n--
 	ps.slots[slot] = nil
 	ps.ids[slot] = ""
@@ -431,7 +455,21 @@ func (ps *Particles) Remove(id string) error {
 		}
 		ps.touched = ps.touched[:k]
 	}
-	ps.maybeResample()
+	if collapsed {
+		ps.settle(max(ps.cfg.Sweeps, 1), 1)
+	} else {
+		ps.maybeResample()
+	}
+	// The evidence moves by the forward predictive of the datum given the
+	// others, estimated with fresh auxiliaries on the moved particles: an
+	// unbiased estimate of p(y | others), without the heavy tail of the
+	// reciprocal weights.
+	fwd := make([]float64, len(ps.parts))
+	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		st.drawAux(nil, src)
+		fwd[p] = st.predictiveTerms(old) - math.Log(nOthers+st.alpha)
+	})
+	ps.logEvidence = ev - ps.logMeanExp(fwd)
 	return nil
 }
 
@@ -563,11 +601,21 @@ func (ps *Particles) resample() {
 func systematicResample(w []float64, u float64) []int {
 	P := len(w)
 	anc := make([]int, P)
-	acc := w[0]
+	// Only particles of positive weight may be drawn: the walk stops at
+	// the last of them even when rounding leaves the cumulative sum a
+	// little below the last point, and skips zero weights at the start.
+	last := P - 1
+	for last > 0 && w[last] == 0 {
+		last--
+	}
 	j := 0
+	for j < last && w[j] == 0 {
+		j++
+	}
+	acc := w[j]
 	for p := 0; p < P; p++ {
 		x := (float64(p) + u) / float64(P)
-		for x > acc && j < P-1 {
+		for (x >= acc || w[j] == 0) && j < last {
 			j++
 			acc += w[j]
 		}

@@ -123,6 +123,19 @@ type Service struct {
 
 	mu    sync.Mutex
 	ready error
+
+	// failpoint, when set (tests only), is called at named points of a
+	// batch; a non-nil error makes process return at once, as if the
+	// process died there: nothing after that point happens.
+	failpoint func(stage string) error
+}
+
+// fail consults the failpoint.
+func (s *Service) fail(stage string) error {
+	if s.failpoint == nil {
+		return nil
+	}
+	return s.failpoint(stage)
 }
 
 // NewService restores every category from store and returns a service
@@ -159,6 +172,15 @@ func NewService(lg *slog.Logger, js jetstream.JetStream, store *state.Store, met
 			return nil, err
 		}
 		s.workers[c] = w
+		if views != nil {
+			rep, err := w.Current()
+			if err != nil {
+				return nil, err
+			}
+			if len(rep.Products) > 0 {
+				views.Update(rep, w.Record)
+			}
+		}
 		lg.Info("restored category", "category", c, "products", w.Particles().Len())
 	}
 	pos, ok, err := store.Position()
@@ -335,6 +357,9 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		if s.metrics != nil {
 			s.metrics.ObserveUpdate(time.Since(t0))
 		}
+		if err := s.fail("applied"); err != nil {
+			return err
+		}
 		switch outcome {
 		case AppliedDuplicate:
 			acks = append(acks, pendingAck{msg, OutcomeDuplicate})
@@ -387,6 +412,9 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		b.Categories = append(b.Categories, state.CategoryUpdate{Category: cat, Snapshot: ch.Snapshot,
 			Products: ch.Records, Alerts: ch.AlertMemory, Meta: meta})
 	}
+	if err := s.fail("before-commit"); err != nil {
+		return err
+	}
 	t0 := time.Now()
 	if len(b.Categories) > 0 || len(b.Outbox) > 0 || b.Position != nil {
 		if err := s.store.Commit(b); err != nil {
@@ -400,9 +428,17 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		s.metrics.ObserveCommit(time.Since(t0))
 	}
 	s.position = max(s.position, lastSeq)
+	if err := s.fail("committed"); err != nil {
+		return err
+	}
 	// Ack only now that the effect is durable (rule 1).
 	counts := map[Outcome]int{}
-	for _, a := range acks {
+	for i, a := range acks {
+		if i == len(acks)/2 {
+			if err := s.fail("acking"); err != nil {
+				return err
+			}
+		}
 		if err := a.msg.DoubleAck(ctx); err != nil {
 			// Committed but not acked: it will be redelivered and
 			// recognised by its sequence.

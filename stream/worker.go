@@ -85,6 +85,7 @@ type Worker struct {
 	mem      alerts.Memory
 	records  map[string]state.ProductRecord
 
+	lastRefit string // last completed refit
 	// since the last completed refit
 	surpriseSum float64
 	surpriseN   int
@@ -131,9 +132,11 @@ func RestoreWorker(category string, cfg WorkerConfig, snapshot, alertMemory []by
 		return nil, fmt.Errorf("category %s: snapshot: %w", category, err)
 	}
 	if len(alertMemory) > 0 {
-		if err := json.Unmarshal(alertMemory, &w.mem); err != nil {
+		var m workerMemory
+		if err := json.Unmarshal(alertMemory, &m); err != nil {
 			return nil, fmt.Errorf("category %s: alert memory: %w", category, err)
 		}
+		w.mem, w.surpriseSum, w.surpriseN, w.changes, w.lastRefit = m.Alerts, m.SurpriseSum, m.SurpriseCount, m.Changes, m.LastRefit
 	}
 	for _, r := range records {
 		w.records[r.Product] = r
@@ -255,6 +258,38 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	rep.Events = out.Events
 	rep.Labels = out.Labels
 	w.surpriseSum, w.surpriseN, w.changes = 0, 0, 0
+	w.lastRefit = refit
+	return rep, nil
+}
+
+// Current summarises the category as it stands, without moving the
+// particles or the alert memory: what the read API shows after a restart
+// until the next refit completes. Events are not returned.
+func (w *Worker) Current() (RefitReport, error) {
+	rep := RefitReport{Category: w.category, Refit: w.lastRefit}
+	if w.ps.Len() == 0 || w.lastRefit == "" {
+		return rep, nil
+	}
+	data := w.ps.Data()
+	sum, err := sequential.Summarize(w.ps.Draws(), data, w.cfg.Summary)
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
+	rep.Summary = sum
+	rep.Products = w.ps.Products()
+	rep.ESS = w.ps.ESS()
+	rep.Diversity = w.ps.Diversity()
+	// Evaluating the last refit again against the memory it produced
+	// gives the labels it reported; the outcome's memory is discarded.
+	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
+		Category: w.category, Refit: w.lastRefit, Products: rep.Products, Data: data, Summary: sum,
+		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity,
+	})
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
+	rep.Alerts = out
+	rep.Labels = out.Labels
 	return rep, nil
 }
 
@@ -267,9 +302,22 @@ type Changes struct {
 	AlertMemory []byte
 }
 
+// workerMemory is what a worker keeps besides the particle system and the
+// product records: the alert memory and the running totals of the refit
+// in progress, so that a restart mid-refit reports the same summary.
+// Stored as the category's alert-memory bytes.
+type workerMemory struct {
+	Alerts        alerts.Memory `json:"alerts"`
+	SurpriseSum   float64       `json:"surprise_sum"`
+	SurpriseCount int           `json:"surprise_count"`
+	Changes       int           `json:"changes"`
+	LastRefit     string        `json:"last_refit,omitempty"`
+}
+
 // Flush returns the category's changed state and forgets the change set.
 func (w *Worker) Flush() (Changes, error) {
-	mem, err := json.Marshal(w.mem)
+	mem, err := json.Marshal(workerMemory{Alerts: w.mem, SurpriseSum: w.surpriseSum, SurpriseCount: w.surpriseN,
+		Changes: w.changes, LastRefit: w.lastRefit})
 	if err != nil {
 		return Changes{}, fmt.Errorf("category %s: alert memory: %w", w.category, err)
 	}
