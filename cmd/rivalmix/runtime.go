@@ -31,6 +31,7 @@ type serviceFlags struct {
 	particles, batch, fetch                          int
 	fetchWait, quiet                                 time.Duration
 	logLevel                                         string
+	replicas                                         int
 }
 
 func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
@@ -55,6 +56,7 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.DurationVar(&f.fetchWait, "fetch-wait", sc.FetchWait, "longest wait for a fetch to fill")
 	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
 	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
+	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream in a NATS cluster (3 across failure domains in production)")
 }
 
 func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
@@ -65,6 +67,7 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.FetchSize = f.fetch
 	sc.FetchWait = f.fetchWait
 	sc.QuietPeriod = f.quiet
+	sc.Bus.Replicas = f.replicas
 	def, per, err := loadSettings(f.configFile, sc.Worker)
 	if err != nil {
 		return sc, err
