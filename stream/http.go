@@ -78,8 +78,8 @@ func Serve(ctx context.Context, ln net.Listener, h http.Handler, lg *slog.Logger
 //	GET /v1/categories/{category}/segments                 SegmentsResponse
 //	GET /v1/categories/{category}/products/{product}       ProductView
 //
-// Errors of the JSON API (unknown category, product or path) are
-// ErrorResponse bodies with status 404. A nil ready means always ready; a
+// Errors of the JSON API are ErrorResponse bodies: 404 for an unknown
+// category, product or path, 405 for a method other than GET or HEAD. A nil ready means always ready; a
 // nil reg serves an empty registry. lg receives the errors of writing a
 // response (nil discards them).
 func NewHTTPHandler(views *Views, reg prometheus.Gatherer, ready func() error, lg *slog.Logger) http.Handler {
@@ -129,6 +129,15 @@ func NewHTTPHandler(views *Views, reg prometheus.Gatherer, ready func() error, l
 	})
 	mux.HandleFunc("GET /{$}", h.dashboard)
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
+		// The catch-all also receives other methods on the GET paths;
+		// those are 405, not 404.
+		probe := r.Clone(r.Context())
+		probe.Method = http.MethodGet
+		if _, pattern := mux.Handler(probe); pattern != "/" {
+			w.Header().Set("Allow", "GET, HEAD")
+			h.json(w, http.StatusMethodNotAllowed, ErrorResponse{Error: fmt.Sprintf("method %s not allowed on %s", r.Method, r.URL.Path)})
+			return
+		}
 		h.json(w, http.StatusNotFound, ErrorResponse{Error: fmt.Sprintf("no such endpoint: %s %s", r.Method, r.URL.Path)})
 	})
 	return mux

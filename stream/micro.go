@@ -29,6 +29,7 @@ const (
 
 // ProductRequest is the request body of rivalmix.read.product.
 type ProductRequest struct {
+	// Category and Product name the product asked for; both required.
 	Category string `json:"category"`
 	Product  string `json:"product"`
 }

@@ -279,12 +279,15 @@ func TestPublisherRunNotifyAndRetry(t *testing.T) {
 	runCtx, stop = context.WithCancel(ctx)
 	defer stop()
 	go func() { done <- p.Run(runCtx) }()
+	// The stream shows a message as soon as it is stored, a moment
+	// before the publisher has the ack and deletes the entry, so wait for
+	// both.
 	waitMsgs := func(want uint64) {
 		t.Helper()
 		deadline := time.Now().Add(10 * time.Second)
-		for f.streamMsgs(t, ctx, f.cfg.OutputStream) != want {
+		for f.streamMsgs(t, ctx, f.cfg.OutputStream) != want || len(f.outboxSeqs(t)) != 0 {
 			if time.Now().After(deadline) {
-				t.Fatalf("output stream did not reach %d messages", want)
+				t.Fatalf("output stream did not reach %d messages with an empty outbox", want)
 			}
 			time.Sleep(10 * time.Millisecond)
 		}

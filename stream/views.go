@@ -27,7 +27,7 @@ func (f Float) MarshalJSON() ([]byte, error) {
 	if math.IsNaN(v) || math.IsInf(v, 0) {
 		return []byte("null"), nil
 	}
-	return strconv.AppendFloat(nil, v, 'g', -1, 64), nil
+	return json.Marshal(v) // the same spelling as a plain float64
 }
 
 // UnmarshalJSON reads a number, or null as NaN.
@@ -121,6 +121,7 @@ type DatumView struct {
 
 // ProductView is one product of a category.
 type ProductView struct {
+	// Category and Product name the product.
 	Category string `json:"category"`
 	Product  string `json:"product"`
 	// Segment is the product's reported segment id, which changes only
@@ -163,13 +164,16 @@ func NewViews() *Views { return &Views{cats: map[string]*categoryViews{}} }
 // worker's goroutine can pass its own method. A report of an empty
 // category leaves it with no segments or products.
 //
-// Segment ids: rep.Labels holds each product's reported id, which may lag
-// its point segment (hysteresis). Each point segment is named by the
-// reported id most of its members carry, giving each id to one segment
-// only (the pair with the most carriers first; ties to the larger
-// segment, then the smaller id); a point segment left without an id, all
-// of whose members still report ids taken by other segments, is shown as
-// "point-<n>", n its rank by size from 1.
+// Segment ids: a point segment takes its stable id from
+// rep.Alerts.SegmentIDs, which alerts.Evaluate assigns. A report without
+// them (one not made by Worker.CompleteRefit) is named from rep.Labels,
+// each product's reported id, which may lag its point segment
+// (hysteresis): each point segment gets the reported id most of its
+// members carry, each id going to one segment only (the pair with the
+// most carriers first; ties to the larger segment, then the smaller id);
+// a point segment left without an id, all of whose members still report
+// ids taken by other segments, is shown as "point-<n>", n its rank by
+// size from 1.
 func (v *Views) Update(rep RefitReport, records func(product string) (state.ProductRecord, bool)) {
 	cv := buildCategoryViews(rep, records)
 	v.mu.Lock()
@@ -241,6 +245,9 @@ func buildCategoryViews(rep RefitReport, records func(string) (state.ProductReco
 // pointSegmentIDs names each point segment of rep's summary; see Update.
 func pointSegmentIDs(rep RefitReport) []string {
 	segs := rep.Summary.Segments
+	if ids := rep.Alerts.SegmentIDs; len(ids) == len(segs) && !slices.Contains(ids, "") {
+		return slices.Clone(ids)
+	}
 	type carry struct {
 		c     int
 		id    string
@@ -355,20 +362,24 @@ var ErrNotFound = errors.New("not found")
 // CategoriesResponse is the body of GET /v1/categories and of the
 // rivalmix.read.categories reply.
 type CategoriesResponse struct {
+	// Categories are those with a completed refit, by name.
 	Categories []CategoryView `json:"categories"`
 }
 
 // SegmentsResponse is the body of GET /v1/categories/{category}/segments
 // and of the rivalmix.read.segments reply.
 type SegmentsResponse struct {
+	// Category is the category asked for.
 	Category string `json:"category"`
 	// Refit is the refit the segments are from.
-	Refit    string        `json:"refit"`
+	Refit string `json:"refit"`
+	// Segments are its point segments, largest first.
 	Segments []SegmentView `json:"segments"`
 }
 
 // ErrorResponse is the body of every error answer of the HTTP read API.
 type ErrorResponse struct {
+	// Error says what was not found or not allowed.
 	Error string `json:"error"`
 }
 

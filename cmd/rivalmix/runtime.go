@@ -6,6 +6,7 @@ import (
 	"flag"
 	"fmt"
 	"log/slog"
+	"math"
 	"net"
 	"os"
 	"path/filepath"
@@ -156,23 +157,28 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 		func() float64 {
 			n, err := r.store.OutboxLen()
 			if err != nil {
-				return -1
+				return math.NaN()
 			}
 			return float64(n)
 		},
 		func() float64 {
-			c, err := r.js.Consumer(context.Background(), sc.Bus.InputStream, sc.Bus.Durable)
+			// A scrape must not hang on an unreachable server.
+			cctx, cancel := context.WithTimeout(context.Background(), time.Second)
+			defer cancel()
+			c, err := r.js.Consumer(cctx, sc.Bus.InputStream, sc.Bus.Durable)
 			if err != nil {
-				return -1
+				return math.NaN()
 			}
 			info := c.CachedInfo()
 			if info == nil {
-				return -1
+				return math.NaN()
 			}
 			return float64(info.NumPending + uint64(info.NumAckPending))
 		})
 	r.views = stream.NewViews()
-	if r.pub, err = stream.NewPublisher(r.store, r.js, stream.DefaultPublisherConfig(), lg); err != nil {
+	pc := stream.DefaultPublisherConfig()
+	pc.Stream = sc.Bus.OutputStream
+	if r.pub, err = stream.NewPublisher(r.store, r.js, pc, lg); err != nil {
 		return nil, err
 	}
 	if svc, err = stream.NewService(lg, r.js, r.store, metrics, r.views, r.pub, sc); err != nil {
