@@ -466,8 +466,11 @@ func (ps *Particles) Remove(id string) error {
 	// reciprocal weights.
 	fwd := make([]float64, len(ps.parts))
 	ps.forEach(func(p int, st *State, src *rand.Rand) {
+		removal := st.aux // keep the removal's auxiliaries for inspection
+		st.aux = nil
 		st.drawAux(nil, src)
 		fwd[p] = st.predictiveTerms(old) - math.Log(nOthers+st.alpha)
+		st.aux = removal
 	})
 	ps.logEvidence = ev - ps.logMeanExp(fwd)
 	return nil
