@@ -764,6 +764,13 @@ func (ps *Particles) compactDraw(st *State, logw float64) Draw {
 	return d
 }
 
+// Summary returns the posterior summaries of the present products (in the
+// order of Products) over the particles' draws: what a settle hands to
+// its caller.
+func (ps *Particles) Summary(opt SummaryOptions) (Summary, error) {
+	return Summarize(ps.Draws(), ps.Data(), opt)
+}
+
 // Data returns the data of the present products in slot order.
 func (ps *Particles) Data() []*Datum {
 	out := make([]*Datum, 0, ps.n)

@@ -235,7 +235,7 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	}
 	w.ps.SettleRefit()
 	data := w.ps.Data()
-	sum, err := sequential.Summarize(w.ps.Draws(), data, w.cfg.Summary)
+	sum, err := w.ps.Summary(w.cfg.Summary)
 	if err != nil {
 		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
 	}

@@ -1,0 +1,186 @@
+package main
+
+import (
+	"bytes"
+	"context"
+	"encoding/json"
+	"errors"
+	"flag"
+	"os"
+	"path/filepath"
+	"sort"
+	"strings"
+	"testing"
+)
+
+func run(t *testing.T, args ...string) (string, string, error) {
+	t.Helper()
+	var out, errb bytes.Buffer
+	err := dispatch(context.Background(), args, &out, &errb)
+	return out.String(), errb.String(), err
+}
+
+// TestFitWritesContract checks that fit writes posterior.json with exactly
+// the fields other tools read, for both methods, and that the demo file's
+// products all get a segment.
+func TestFitWritesContract(t *testing.T) {
+	t.Parallel()
+	for _, method := range []string{"gibbs", "particles"} {
+		t.Run(method, func(t *testing.T) {
+			t.Parallel()
+			out := filepath.Join(t.TempDir(), "p.json")
+			args := []string{"fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", out, "--quiet",
+				"--method", method, "--sweeps", "60", "--burn", "20", "--thin", "2", "--particles", "32", "--final-sweeps", "2", "--similarity"}
+			stdout, _, err := run(t, args...)
+			if err != nil {
+				t.Fatal(err)
+			}
+			if !strings.Contains(stdout, "segment") || !strings.Contains(stdout, "300 products") {
+				t.Errorf("table missing from stdout:\n%s", stdout)
+			}
+			raw, err := os.ReadFile(out)
+			if err != nil {
+				t.Fatal(err)
+			}
+			var fields map[string]json.RawMessage
+			if err := json.Unmarshal(raw, &fields); err != nil {
+				t.Fatal(err)
+			}
+			var keys []string
+			for k := range fields {
+				keys = append(keys, k)
+			}
+			sort.Strings(keys)
+			want := "alpha_mean category next_value num_segments products segments similarity"
+			if got := strings.Join(keys, " "); got != want {
+				t.Errorf("posterior.json fields %q, want %q", got, want)
+			}
+			var p posteriorFile
+			if err := json.Unmarshal(raw, &p); err != nil {
+				t.Fatal(err)
+			}
+			if p.Category != "larkfield-cereal" || len(p.Products) != 300 || len(p.Segments) != 300 || len(p.Similarity) != 300 {
+				t.Errorf("category %q, %d products, %d segments, %d similarity rows", p.Category, len(p.Products), len(p.Segments), len(p.Similarity))
+			}
+			sum := 0.0
+			for _, pr := range p.NumSegments {
+				sum += pr
+			}
+			if sum < 0.999 || sum > 1.001 {
+				t.Errorf("num_segments sums to %v", sum)
+			}
+			for id, nv := range p.NextValue {
+				if nv.PExceed < 0 || nv.PExceed > 1 || !(nv.Lo <= nv.Median && nv.Median <= nv.Hi) {
+					t.Errorf("%s: next value %+v out of order", id, nv)
+				}
+			}
+		})
+	}
+}
+
+// TestFitBadLines: bad lines are skipped with their line number and field,
+// and --strict stops at the first.
+func TestFitBadLines(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	in := filepath.Join(dir, "in.jsonl")
+	body := `{"product":"P-1","refit":"W1","relative":[0.5,0.2]}
+{"product":"P-2","refit":"W1","relative":[0.4,"x"]}
+{"product":"P-3","refit":"W1","own":1.5,"cross":[{"id":"P-1","value":0.3}]}
+{"product":"P-4","refit":"W1","relative":[0.3]}
+`
+	if err := os.WriteFile(in, []byte(body), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	stdout, stderr, err := run(t, "fit", "--in", in, "--out", filepath.Join(dir, "p.json"), "--quiet", "--sweeps", "20", "--burn", "5", "--thin", "1")
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !strings.Contains(stderr, "line 2") || !strings.Contains(stderr, "relative[1]") || !strings.Contains(stderr, "line 3") || !strings.Contains(stderr, `"own"`) {
+		t.Errorf("stderr does not name the lines and fields:\n%s", stderr)
+	}
+	if !strings.Contains(stdout, "2 products, 2 lines skipped") {
+		t.Errorf("summary line wrong:\n%s", stdout)
+	}
+	_, _, err = run(t, "fit", "--in", in, "--out", filepath.Join(dir, "q.json"), "--quiet", "--strict")
+	if err == nil || !strings.Contains(err.Error(), "line 2") {
+		t.Errorf("--strict: err = %v, want the first bad line", err)
+	}
+}
+
+// TestReplayDeterministic: the same input and seed give a byte-identical
+// events file, and the table has a row per refit.
+func TestReplayDeterministic(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	in := filepath.Join(dir, "refits.jsonl")
+	if _, _, err := run(t, "simulate", "--out", in, "--products", "40", "--refits", "3", "--sim-seed", "5"); err != nil {
+		t.Fatal(err)
+	}
+	var files []string
+	var table string
+	for k := 0; k < 2; k++ {
+		out := filepath.Join(dir, "events"+string(rune('a'+k))+".jsonl")
+		stdout, _, err := run(t, "replay", "--in", in, "--out", out, "--particles", "16", "--quiet", "--seed", "3")
+		if err != nil {
+			t.Fatal(err)
+		}
+		files = append(files, out)
+		table = stdout
+	}
+	a, _ := os.ReadFile(files[0])
+	b, _ := os.ReadFile(files[1])
+	if len(a) == 0 || !bytes.Equal(a, b) {
+		t.Errorf("events files differ or are empty (%d and %d bytes)", len(a), len(b))
+	}
+	for _, w := range []string{"2026-W40", "2026-W41", "2026-W42"} {
+		if !strings.Contains(table, w) {
+			t.Errorf("table lacks refit %s:\n%s", w, table)
+		}
+	}
+	for _, line := range bytes.Split(bytes.TrimSpace(a), []byte("\n")) {
+		var ev struct {
+			Specversion, ID, Source, Type string
+		}
+		if err := json.Unmarshal(line, &ev); err != nil || ev.Specversion != "1.0" || ev.ID == "" || ev.Type == "" {
+			t.Fatalf("not a CloudEvent: %s (%v)", line, err)
+		}
+	}
+}
+
+// TestHelpAndUnknown: every command has help; unknown commands fail.
+func TestHelpAndUnknown(t *testing.T) {
+	t.Parallel()
+	for _, c := range commands() {
+		_, stderr, err := run(t, c.name, "-h")
+		if !errors.Is(err, flag.ErrHelp) || !strings.Contains(stderr, "usage: rivalmix "+c.name) {
+			t.Errorf("%s -h: err %v, stderr %q", c.name, err, stderr)
+		}
+	}
+	if _, _, err := run(t, "frobnicate"); err == nil {
+		t.Error("unknown command accepted")
+	}
+}
+
+// TestSettingsFile: the YAML settings reach the category's worker config
+// and unknown keys are refused.
+func TestSettingsFile(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	good := filepath.Join(dir, "good.yaml")
+	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n"), 0o644)
+	f := serviceFlags{configFile: good, particles: 256, batch: 256, fetch: 256, fetchWait: 1, seed: 1, replicas: 1}
+	sc, err := f.serviceConfig()
+	if err != nil {
+		t.Fatal(err)
+	}
+	if sc.Worker.Particles.Particles != 64 || sc.PerCategory["cereal"].Alerts.Threshold != 0.3 || sc.PerCategory["cereal"].Particles.Particles != 64 {
+		t.Errorf("settings not applied: %+v", sc.PerCategory["cereal"])
+	}
+	bad := filepath.Join(dir, "bad.yaml")
+	os.WriteFile(bad, []byte("defaults:\n  particle: 64\n"), 0o644)
+	f.configFile = bad
+	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "particle") {
+		t.Errorf("unknown key: err = %v", err)
+	}
+}
