@@ -34,16 +34,21 @@ type Config struct {
 	// between MoveOut and MoveIn is the hysteresis band that keeps a
 	// product between two segments from flapping.
 	MoveOut float64
-	// Confirm >= 1 is the number of consecutive refits at which a product
-	// must meet the MoveIn and MoveOut conditions towards the same segment
-	// before its reported segment changes (the move is reported at the
-	// last of them). 1 moves at the first crossing. Each refit replaces a
-	// product's datum, and a fresh datum from the product's own segment now
-	// and then looks confidently like another one (memberships near 1, so
-	// no membership band can tell it from a real move); such a blip is
-	// gone at the next refit, whereas a real move persists. Confirm = 2
-	// filters the blips at the cost of reporting real moves one refit
-	// later (see the simulation check in simulation_test.go).
+	// Confirm >= 1 is the number of consecutive refits a segment
+	// assignment must hold before it counts: a move is reported at the
+	// last of Confirm consecutive refits that meet the MoveIn and MoveOut
+	// conditions towards the same segment, and a new product's label is
+	// provisional (follows its point segment without events) until it has
+	// stood unchanged for Confirm refits. 1 moves at the first crossing
+	// and establishes new products at once.
+	//
+	// Each refit replaces a product's datum, and now and then a fresh
+	// datum from the product's own segment looks confidently like another
+	// one (memberships near 1, so no membership band can tell it from a
+	// real move). Such a blip is gone at the next refit, whereas a real
+	// move persists; Confirm = 2 filters the blips at the cost of
+	// reporting real moves one refit later (simulation_test.go measures
+	// both settings).
 	Confirm int
 	// Threshold, a relative cross-elasticity > 0, is the t of the
 	// missed-competitor rule P(next value > t) >= AlertProb. It must equal

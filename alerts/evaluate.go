@@ -47,6 +47,9 @@ type Outcome struct {
 	Events []Event
 	// Labels[i] is the reported segment id of Products[i].
 	Labels []string
+	// Provisional[i] is true while Products[i]'s label is provisional
+	// (Memory.Provisional).
+	Provisional []bool
 	// Point[i] is the id of Products[i]'s point segment.
 	Point []string
 	// SegmentIDs[c] is the id of point segment c of the summary.
@@ -61,14 +64,24 @@ type Outcome struct {
 // event order included.
 //
 // Segment ids: the point partition is matched to the previous labelled
-// point partition (labelSegments). Moves: a product's reported segment
-// changes to the id of its point segment only when its membership there
-// is >= MoveIn and its membership to the point segment now carrying its
-// reported id is <= MoveOut (0 when that id retired), and only once that
-// has held towards the same segment for Config.Confirm refits in a row
-// (at once when the reported segment retired); a new product takes its
-// point segment without an event. Missed competitors: see the Missed and
-// Cleared event types and Config.
+// point partition (labelSegments).
+//
+// Labels and moves. A segment assignment drawn from one refit's datum is
+// as noisy as that datum, so an assignment counts only once it has held
+// Config.Confirm refits in a row:
+//   - A new product takes its point segment at once, without an event,
+//     as a provisional label. While provisional, the label follows the
+//     point segment, again without events, whenever the product's
+//     membership there is >= MoveIn and to the point segment now carrying
+//     its label is <= MoveOut; it is established once it has stood
+//     unchanged for Confirm refits (counting the one that set it).
+//   - An established label changes, with a moved event, only when the
+//     same two membership conditions have held towards the same segment
+//     for Confirm refits in a row, or at once when the labelled segment
+//     retired (its membership then counts as 0).
+//
+// With Confirm = 1 no label is provisional and every crossing of the
+// membership band moves at once.
 //
 // Errors wrap ErrConfig, ErrMemory or ErrRefit and name the field.
 func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
@@ -85,15 +98,23 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 	k := len(sum.Segments)
 	lab := labelSegments(prev.Point, prev.Issued, r.Products, sum.Partition, k, cfg.SplitShare)
 
+	n := len(r.Products)
 	out := Outcome{
-		Memory: Memory{Issued: lab.issued, Refit: r.Refit, Point: make(map[string]string, len(r.Products)),
-			Reported: make(map[string]string, len(r.Products)), Pending: make(map[string]PendingMove),
-			Alert: make(map[string]AlertMemory)},
-		Labels:     make([]string, len(r.Products)),
-		Point:      make([]string, len(r.Products)),
-		SegmentIDs: lab.ids,
+		Memory: Memory{
+			Issued:      lab.issued,
+			Refit:       r.Refit,
+			Point:       make(map[string]string, n),
+			Reported:    make(map[string]string, n),
+			Provisional: make(map[string]int),
+			Pending:     make(map[string]PendingMove),
+			Alert:       make(map[string]AlertMemory),
+		},
+		Labels:      make([]string, n),
+		Point:       make([]string, n),
+		Provisional: make([]bool, n),
+		SegmentIDs:  lab.ids,
 	}
-	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: len(r.Products), Segments: k,
+	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: n, Segments: k,
 		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: finiteOrNil(r.MeanSurprise)}
 	emit := func(kind Kind, subject string, data any) {
 		out.Events = append(out.Events, NewEvent(r.Category, r.Refit, kind, subject, data))
@@ -135,14 +156,31 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		c := sum.Partition[i]
 		point := lab.ids[c]
 		rep := point
-		if old, ok := prev.Reported[p]; ok && old != point {
-			rep = old
-			in := sum.Membership[i][c]
-			outOf, retired := 0.0, true
-			if oc, live := lab.live[old]; live {
-				outOf, retired = sum.Membership[i][oc], false
+		old, known := prev.Reported[p]
+		in := sum.Membership[i][c]
+		outOf, retired := 0.0, true
+		if oc, live := lab.live[old]; live {
+			outOf, retired = sum.Membership[i][oc], false
+		}
+		crossed := in >= cfg.MoveIn && outOf <= cfg.MoveOut
+		held, young := prev.Provisional[p]
+		switch {
+		case !known:
+			// A new product takes its point segment, provisionally.
+			held, young = 1, true
+		case young:
+			// A provisional label follows the point segment without an
+			// event whenever the band is crossed; it is established once
+			// it has stood unchanged for Confirm refits.
+			if old != point && crossed {
+				held = 1
+			} else {
+				rep = old
+				held++
 			}
-			if in >= cfg.MoveIn && outOf <= cfg.MoveOut {
+		case old != point:
+			rep = old
+			if crossed {
 				count := 1
 				if pm, ok := prev.Pending[p]; ok && pm.To == point {
 					count = pm.Count + 1
@@ -159,6 +197,11 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 					rs.Pending++
 				}
 			}
+		}
+		if young && held < cfg.Confirm {
+			out.Memory.Provisional[p] = held
+			out.Provisional[i] = true
+			rs.Provisional++
 		}
 		out.Labels[i], out.Point[i] = rep, point
 		out.Memory.Point[p], out.Memory.Reported[p] = point, rep

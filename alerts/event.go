@@ -280,7 +280,10 @@ type RefitSummary struct {
 	Moves int `json:"moves"`
 	// Pending is the number of products that met the move conditions
 	// but wait for Config.Confirm consecutive refits.
-	Pending     int `json:"pending"`
+	Pending int `json:"pending"`
+	// Provisional is the number of products whose label is provisional
+	// (new, not yet held for Config.Confirm refits).
+	Provisional int `json:"provisional"`
 	Births      int `json:"births"`
 	Retirements int `json:"retirements"`
 	Splits      int `json:"splits"`

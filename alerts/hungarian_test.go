@@ -217,3 +217,33 @@ func BenchmarkAssign50(b *testing.B) {
 		}
 	}
 }
+
+// FuzzAssign: any small finite matrix gets a valid assignment whose cost
+// equals the brute-force optimum. Bytes become rows x cols entries in
+// [-128, 127].
+func FuzzAssign(f *testing.F) {
+	f.Add(uint8(3), uint8(3), []byte{4, 1, 3, 2, 0, 5, 3, 2, 2})
+	f.Add(uint8(2), uint8(3), []byte{1, 2, 3, 2, 4, 6})
+	f.Add(uint8(3), uint8(2), []byte{5, 1, 1, 5, 3, 3})
+	f.Fuzz(func(t *testing.T, rows, cols uint8, raw []byte) {
+		r, c := 1+int(rows%6), 1+int(cols%6)
+		if len(raw) < r*c {
+			return
+		}
+		cost := make([][]float64, r)
+		for i := range cost {
+			cost[i] = make([]float64, c)
+			for j := range cost[i] {
+				cost[i][j] = float64(int8(raw[i*c+j]))
+			}
+		}
+		got, err := Assign(cost)
+		if err != nil {
+			t.Fatal(err)
+		}
+		// Integer entries: sums are exact.
+		if total, best := checkAssignment(t, cost, got), bruteForceMin(cost); total != best {
+			t.Fatalf("cost %v, brute force %v for %v", total, best, cost)
+		}
+	})
+}

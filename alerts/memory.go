@@ -29,6 +29,11 @@ type Memory struct {
 	// hysteresis. It may name a retired segment until the product's
 	// membership to a live one reaches Config.MoveIn.
 	Reported map[string]string `json:"reported"`
+	// Provisional holds the products whose label is still provisional
+	// (see Evaluate): new, and their label not yet unchanged for
+	// Config.Confirm refits. The value, in [1, Confirm), is the number of
+	// refits the label has stood, counting the one that set it.
+	Provisional map[string]int `json:"provisional"`
 	// Pending holds the products that met the move conditions at the
 	// last refit but not yet for Config.Confirm refits in a row.
 	Pending map[string]PendingMove `json:"pending"`
@@ -56,8 +61,8 @@ type AlertMemory struct {
 }
 
 // Validate reports the first inconsistency: a segment id not of the form
-// S<k> with 1 <= k <= Issued, an empty product id, a pending count below
-// 1, or an alert probability outside [0, 1]. Errors wrap ErrMemory.
+// S<k> with 1 <= k <= Issued, an empty product id, a provisional or
+// pending count below 1, or an alert probability outside [0, 1]. Errors wrap ErrMemory.
 func (m Memory) Validate() error {
 	if m.Issued < 0 {
 		return fmt.Errorf("%w: issued %d, want >= 0", ErrMemory, m.Issued)
@@ -79,6 +84,11 @@ func (m Memory) Validate() error {
 	}
 	if err := check("reported", m.Reported); err != nil {
 		return err
+	}
+	for _, p := range sortedKeys(m.Provisional) {
+		if p == "" || m.Provisional[p] < 1 {
+			return fmt.Errorf("%w: provisional[%q] = %d, want a product and a count >= 1", ErrMemory, p, m.Provisional[p])
+		}
 	}
 	for _, p := range sortedKeys(m.Pending) {
 		pm := m.Pending[p]

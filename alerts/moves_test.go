@@ -116,6 +116,7 @@ func TestConfirmFiltersBlips(t *testing.T) {
 		cfg.Confirm = tc.confirm
 		m := &mover{t: t, cfg: cfg}
 		m.step(0, home)
+		m.step(0, home) // x's label is established from here on
 		m.step(1, away)
 		m.step(0, home)
 		m.step(1, away)
@@ -130,6 +131,51 @@ func TestConfirmFiltersBlips(t *testing.T) {
 		m.step(1, away)
 		if label := m.step(1, away); label != "S2" {
 			t.Errorf("confirm %d: x in %s after two refits away, want S2", tc.confirm, label)
+		}
+	}
+}
+
+// TestProvisionalLabels: with Confirm = 2 a new product whose first datum
+// put it in the wrong segment is relabelled without a moved event, and
+// its label is established once it has stood for two refits; with
+// Confirm = 1 the same correction is a move.
+func TestProvisionalLabels(t *testing.T) {
+	t.Parallel()
+	home, away := []float64{0.96, 0.01}, []float64{0.02, 0.97}
+	for _, confirm := range []int{1, 2} {
+		cfg := DefaultConfig()
+		cfg.Confirm = confirm
+		m := &mover{t: t, cfg: cfg}
+		provisional := func() bool { _, ok := m.mem.Provisional["x"]; return ok }
+
+		// x arrives looking like segment 1 (S2), then shows its home.
+		if got := m.step(1, away); got != "S2" || provisional() != (confirm > 1) {
+			t.Fatalf("confirm %d: new x labelled %s, provisional %v", confirm, got, provisional())
+		}
+		if got := m.step(0, home); got != "S1" {
+			t.Fatalf("confirm %d: x labelled %s after its home datum, want S1", confirm, got)
+		}
+		wantMoves := 0
+		if confirm == 1 {
+			wantMoves = 1
+		}
+		if len(m.moves) != wantMoves {
+			t.Errorf("confirm %d: %d moves for the correction of a new product, want %d", confirm, len(m.moves), wantMoves)
+		}
+		// The relabel restarted the count: still provisional for one
+		// more refit with Confirm = 2, then established.
+		if provisional() != (confirm > 1) {
+			t.Errorf("confirm %d: provisional %v after the relabel", confirm, provisional())
+		}
+		out := mustEvaluate(t, cfg, m.mem, flapper(t, "W-late", 0, home))
+		m.mem = out.Memory
+		if provisional() || out.Provisional[len(out.Provisional)-1] || out.Summary.Provisional != 0 {
+			t.Errorf("confirm %d: x still provisional after its label stood %d refits", confirm, confirm)
+		}
+		// From now on a blip is held back by the move rule.
+		m.step(1, away)
+		if got := m.step(0, home); got != "S1" || len(m.moves) != wantMoves+2*(2-confirm) {
+			t.Errorf("confirm %d: after a blip x in %s with %d moves", confirm, got, len(m.moves))
 		}
 	}
 }

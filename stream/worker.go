@@ -243,6 +243,7 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	rep.Products = w.ps.Products()
 	rep.ESS = w.ps.ESS()
 	rep.Diversity = w.ps.Diversity()
+	rep.MeanSurprise = math.NaN() // no datum changed: the summary omits it
 	if w.surpriseN > 0 {
 		rep.MeanSurprise = w.surpriseSum / float64(w.surpriseN)
 	}
