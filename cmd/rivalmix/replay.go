@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"math"
 	"os"
 	"path/filepath"
 	"slices"
@@ -294,8 +295,12 @@ func (r *replayer) printTable(w io.Writer) {
 			if row.hasPrev {
 				ari = fmt.Sprintf("%.3f", row.ari)
 			}
-			fmt.Fprintf(tw, "%s\t%s\t%d\t%d\t%d\t%d\t%.0f/%d\t%d\t%s\t%.2f\t\n", row.category, row.refit, row.products,
-				row.segments, row.moves, row.alerts, row.ess, row.particles, row.diversity, ari, row.surprise)
+			surprise := "-"
+			if !math.IsNaN(row.surprise) {
+				surprise = fmt.Sprintf("%.2f", row.surprise)
+			}
+			fmt.Fprintf(tw, "%s\t%s\t%d\t%d\t%d\t%d\t%.0f/%d\t%d\t%s\t%s\t\n", row.category, row.refit, row.products,
+				row.segments, row.moves, row.alerts, row.ess, row.particles, row.diversity, ari, surprise)
 		}
 	}
 	tw.Flush()

@@ -147,8 +147,15 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 	if r.js, err = jetstream.New(r.nc); err != nil {
 		return nil, fmt.Errorf("jetstream: %w", err)
 	}
-	if err := stream.EnsureStreams(ctx, r.js, sc.Bus); err != nil {
-		return nil, err
+	// The streams only: the durable consumer is the service's, which
+	// re-creates it at Run to deliver from the state file's position.
+	// EnsureStreams here would try to turn that consumer back to deliver
+	// from the first message, which the server refuses, so a restart
+	// after any committed run would fail.
+	for _, cfg := range sc.Bus.StreamConfigs() {
+		if _, err := r.js.CreateOrUpdateStream(ctx, cfg); err != nil {
+			return nil, fmt.Errorf("create or update stream %s: %w", cfg.Name, err)
+		}
 	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
