@@ -172,6 +172,12 @@ func NewService(lg *slog.Logger, js jetstream.JetStream, store *state.Store, met
 			return nil, err
 		}
 		s.workers[c] = w
+		if w.changes > 0 {
+			// A refit was in progress at the last stop; its quiet period
+			// starts again now, or it would wait for the next message.
+			s.lastSeen[c] = time.Now()
+			s.lastRefit[c] = latestRefit(recs)
+		}
 		if views != nil {
 			rep, err := w.Current()
 			if err != nil {
@@ -191,6 +197,18 @@ func NewService(lg *slog.Logger, js jetstream.JetStream, store *state.Store, met
 		s.position = pos.StreamSeq
 	}
 	return s, nil
+}
+
+// latestRefit returns the refit of the record applied last.
+func latestRefit(recs []state.ProductRecord) string {
+	var refit string
+	var seq uint64
+	for _, r := range recs {
+		if r.Refit != "" && r.AppliedSeq >= seq {
+			refit, seq = r.Refit, r.AppliedSeq
+		}
+	}
+	return refit
 }
 
 // Ready reports nil once the service consumes input, else the reason.
@@ -244,6 +262,10 @@ func (s *Service) Run(ctx context.Context) error {
 	cons, err := s.consumer(ctx)
 	if err != nil {
 		s.setReady(err)
+		if ctx.Err() != nil {
+			// Stopped while starting: nothing was fetched, nothing to finish.
+			return nil
+		}
 		return err
 	}
 	s.setReady(nil)
@@ -337,6 +359,13 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 			return err
 		}
 		if m.Kind == KindRefitComplete {
+			if w.lastRefit == m.Refit && w.changes == 0 {
+				// This refit was completed and nothing changed since: the
+				// same refit-complete sent again. Completing it twice would
+				// move the particles and re-emit the refit's event ids.
+				acks = append(acks, pendingAck{msg, OutcomeDuplicate})
+				continue
+			}
 			evs, err := s.complete(w, m.Refit, md.Timestamp)
 			if err != nil {
 				return err
