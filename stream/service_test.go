@@ -845,7 +845,15 @@ func TestServiceRedelivery(t *testing.T) {
 	if !reflect.DeepEqual(recs2, recs3) {
 		t.Error("a payload applied before, sent again as a new message, changed the product records")
 	}
-	if got := testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeDuplicate))); got != 2 {
+	// The counter moves after the acks, which follow the commit that
+	// waitDone saw: give it a moment.
+	dupCount := func() float64 {
+		return testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeDuplicate)))
+	}
+	for deadline := time.Now().Add(5 * time.Second); dupCount() < 2 && time.Now().Before(deadline); {
+		time.Sleep(20 * time.Millisecond)
+	}
+	if got := dupCount(); got != 2 {
 		t.Errorf("duplicates counted %v, want the 2 repeated messages", got)
 	}
 	if _, events3 := outputEvents(t, ctx, js, cfg.Bus.OutputStream); !reflect.DeepEqual(events2, events3) {
