@@ -275,7 +275,7 @@ func (s *Service) Run(ctx context.Context) error {
 		if err != nil {
 			s.setReady(fmt.Errorf("fetch: %w", err))
 			s.lg.Warn("fetch failed; retrying", "err", err)
-			if !sleep(ctx, time.Second) {
+			if !Sleep(ctx, time.Second) {
 				break
 			}
 			continue
@@ -302,7 +302,9 @@ func (s *Service) Run(ctx context.Context) error {
 // messages ends with.
 var errNoMessages = jetstream.ErrNoMessages
 
-func sleep(ctx context.Context, d time.Duration) bool {
+// Sleep waits for d or until ctx ends, and reports whether the whole
+// wait elapsed.
+func Sleep(ctx context.Context, d time.Duration) bool {
 	t := time.NewTimer(d)
 	defer t.Stop()
 	select {

@@ -179,7 +179,7 @@ func publishPaced(ctx context.Context, js jetstream.JetStream, subject string, m
 		if rate > 0 {
 			due := start.Add(time.Duration(float64(i) / rate * float64(time.Second)))
 			if d := time.Until(due); d > 0 {
-				if !sleepCtx(ctx, d) {
+				if !stream.Sleep(ctx, d) {
 					return ctx.Err()
 				}
 			}
@@ -196,15 +196,4 @@ func publishPaced(ctx context.Context, js jetstream.JetStream, subject string, m
 		}
 	}
 	return wait()
-}
-
-func sleepCtx(ctx context.Context, d time.Duration) bool {
-	t := time.NewTimer(d)
-	defer t.Stop()
-	select {
-	case <-ctx.Done():
-		return false
-	case <-t.C:
-		return true
-	}
 }
