@@ -119,20 +119,39 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 	if n == 0 {
 		return 0
 	}
-	var sumLx, sumZ, sumLG, lgLast float64
-	for _, ly := range d.logY {
+	// sum_m log G(z_m) is taken as the log of a running product of the
+	// G factors (each in (0, 1]), folded into logAcc before it could
+	// underflow: one log per datum instead of one per value.
+	var sumLx, sumZ, logAcc, lgLast float64
+	prod := 1.0
+	for m, ly := range d.logY {
 		lx := ly - kn.logS
 		t := kn.k * lx
 		z := math.Exp(t)
-		if t < -30 {
-			lgLast = t - 0.5*z // see logGFromLogZ
-		} else {
-			lgLast = Log1mExp(z)
-		}
 		sumLx += lx
 		sumZ += z
-		sumLG += lgLast
+		if t < -30 {
+			lg := t - 0.5*z // see logGFromLogZ
+			logAcc += lg
+			lgLast = lg
+			continue
+		}
+		var g float64
+		if z <= math.Ln2 {
+			g = -math.Expm1(-z)
+		} else {
+			g = 1 - math.Exp(-z)
+		}
+		if m == n-1 {
+			lgLast = math.Log(g)
+		}
+		prod *= g
+		if prod < 1e-280 {
+			logAcc += math.Log(prod)
+			prod = 1
+		}
 	}
+	sumLG := logAcc + math.Log(prod)
 	return d.logFall + float64(n)*kn.lnorm + (kn.k-1)*sumLx - sumZ + (kn.a-1)*sumLG + float64(d.l-n)*kn.a*lgLast
 }
 
