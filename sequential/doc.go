@@ -18,10 +18,16 @@
 // # Batch sampler
 //
 // Gibbs runs Algorithm 8 of Neal (2000) with m auxiliary segments drawn
-// from the base measure, univariate slice sampling (Neal 2003) of log a,
-// log k and log s per segment, and the Escobar-West (1995) update of
-// alpha. For fixed k and s the value likelihood of a segment is linear in a
-// and log a, so the log a update costs one pass over the members.
+// from the base measure, a kernel update per segment, and the
+// Escobar-West (1995) update of alpha. The kernel update is a univariate
+// slice update (Neal 2003) of log a, which is cheap because for fixed k
+// and s the value likelihood of a segment is linear in a and log a (one
+// pass over the members, then O(1) per evaluation), followed by two
+// rounds of random-walk Metropolis steps on log k and on log s. Their
+// steps follow the usual large-sample scale of the conditional,
+// 1/sqrt(number of values) and, for log s, 1/k as well, so they need no
+// per-category tuning; each costs one pass over the members, where a
+// slice update of a narrow conditional costs about ten.
 //
 // # Sequential updater: weights
 //
@@ -75,9 +81,13 @@
 // and the products touched since the last settle are reassigned in every
 // particle, so copies diverge. Settle resamples if needed and runs the
 // rejuvenation budget: Sweeps passes, each reassigning the touched
-// products and a random share of the others (Algorithm 8), slice-updating
-// every occupied segment's kernel and updating alpha. Each move leaves the
-// current posterior invariant. Diversity counts distinct ancestors since
+// products and a random share of the others (Algorithm 8), updating the
+// kernel of each segment c that holds t_c touched products with
+// probability min(1, 2 t_c / n_c), and updating alpha; so a settle costs
+// in proportion to the changes it absorbs. SettleRefit, at the end of a
+// refit, makes RefitSweeps passes over every product and every segment.
+// Each move leaves the current posterior invariant (the choice of
+// segments depends only on assignments the kernel update leaves alone). Diversity counts distinct ancestors since
 // the start, which shows path degeneracy.
 //
 // Every particle draws from its own stream, seeded for each operation from

@@ -46,7 +46,8 @@ func (c GibbsConfig) Validate() error {
 
 // Gibbs is the batch Pólya-urn sampler for the non-conjugate mixture:
 // Algorithm 8 of Neal (2000) for assignments with p integrated out,
-// slice sampling (Neal 2003) of each segment's log a, log k, log s, and
+// a slice update (Neal 2003) of each segment's log a and random-walk
+// Metropolis steps on its log k and log s (package doc), and
 // Escobar and West (1995) for alpha. It is the reference the sequential
 // updater is validated against. Not safe for concurrent use.
 type Gibbs struct {

@@ -55,12 +55,14 @@ type ParticleConfig struct {
 	Resampler   Resampler
 	// Sweeps is the number of rejuvenation passes at a settle; each pass
 	// reassigns the products touched since the last settle plus a random
-	// RandomShare of the others, then refreshes every occupied segment's
-	// kernel and alpha.
+	// RandomShare of the others, then refreshes the kernel of each
+	// segment holding t touched products of n with probability
+	// min(1, 2t/n), and alpha.
 	Sweeps      int
 	RandomShare float64
-	// RefitSweeps is the number of passes over every product that
-	// SettleRefit runs at the end of a refit.
+	// RefitSweeps is the number of passes over every product and segment
+	// that SettleRefit runs at the end of a refit, and that a Remove runs
+	// when its weights collapse the ESS.
 	RefitSweeps int
 	// KeepSweeps is how many of a settle's last rejuvenation sweeps each
 	// particle keeps as draws for the summaries (1 = the final state
@@ -437,7 +439,8 @@ func (ps *Particles) Remove(id string) error {
 	// The removal weight is the reciprocal of a predictive density: when
 	// the product had a segment of its own it is heavy-tailed and the ESS
 	// collapses. Resampling alone would leave few distinct ancestors, so
-	// the particles are resampled and moved over every product at once.
+	// the particles are resampled and moved over every product and every
+	// segment, RefitSweeps times, as at the end of a refit.
 	collapsed := ps.ESS() < ps.cfg.ESSFraction*before
 	ps.n--
 	ps.slots[slot] = nil
@@ -456,7 +459,7 @@ func (ps *Particles) Remove(id string) error {
 		ps.touched = ps.touched[:k]
 	}
 	if collapsed {
-		ps.settle(max(ps.cfg.Sweeps, 1), 1)
+		ps.settle(max(ps.cfg.RefitSweeps, 1), 1)
 	} else {
 		ps.maybeResample()
 	}
@@ -525,7 +528,7 @@ func (ps *Particles) maybeResample() bool {
 // all their members, wait for the settle.
 const smallSegment = 64
 
-// refreshSmallSegments slice-updates the kernel of every segment holding
+// refreshSmallSegments updates the kernel of every segment holding
 // one of the touched slots and at most smallSegment members. Which
 // segments qualify depends only on the assignments, which the update does
 // not change, so the composite move still leaves the posterior invariant.
@@ -558,6 +561,31 @@ func (s *State) refreshSmallSegments(touched []int, src *rand.Rand) {
 	}
 	for k, c := range pick {
 		s.updateTheta(c, mem[k], src)
+	}
+}
+
+// refreshTouchedSegments updates, between refits, the kernel of
+// each segment c holding t_c of the touched slots with probability
+// min(1, 2 t_c / n_c): a segment whose membership changed a lot is
+// always refreshed, a large one that gained a single product rarely, so
+// a settle costs in proportion to the changes it absorbs rather than to
+// the category's size. The choice depends only on the assignments and
+// the touched set, which the update does not change, so each chosen
+// update, and the whole move, leaves the posterior invariant.
+func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Rand) {
+	count := make([]int, len(s.segs))
+	for _, i := range touched {
+		if c := s.label(i); c != Absent {
+			count[c]++
+		}
+	}
+	for c, t := range count {
+		if t == 0 {
+			continue
+		}
+		if n := s.segs[c].size; 2*t >= n || src.Float64()*float64(n) < 2*float64(t) {
+			s.updateTheta(uint16(c), mem[c], src)
+		}
 	}
 }
 
@@ -705,10 +733,14 @@ func (ps *Particles) settle(sweeps int, share float64) bool {
 				}
 			}
 			mem = st.members(mem)
-			for c := range st.segs {
-				if st.segs[c].size > 0 {
-					st.updateTheta(uint16(c), mem[c], src)
+			if share >= 1 {
+				for c := range st.segs {
+					if st.segs[c].size > 0 {
+						st.updateTheta(uint16(c), mem[c], src)
+					}
 				}
+			} else {
+				st.refreshTouchedSegments(touched, mem, src)
 			}
 			st.updateAlpha(src)
 			if s >= keepFrom {

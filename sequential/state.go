@@ -262,10 +262,22 @@ func (s *State) members(buf [][]int) [][]int {
 	return buf
 }
 
-// updateTheta refreshes segment c's kernel parameters by univariate slice
-// sampling (Neal 2003, stepping out and shrinkage) of log a, log k and
-// log s in turn, targeting G0 times the value likelihood of the members.
-// The count part does not depend on theta.
+// thetaMoves is the number of Metropolis rounds per kernel update, and
+// thetaStepK, thetaStepS the random-walk steps of log k and of k log s for
+// one value; they shrink like 1/sqrt of the segment's number of values.
+// Tuned on simulated categories for acceptance rates of about 0.3 to 0.6
+// over segments of 3 to 1,500 products (a rate near 0.44 is the usual
+// aim for one-dimensional random walks; common practice).
+var (
+	thetaMoves             = 2
+	thetaStepK, thetaStepS = 1.4, 1.6
+)
+
+// updateTheta refreshes segment c's kernel parameters, targeting G0 times
+// the value likelihood of the members (the count part does not depend on
+// theta): a univariate slice update (Neal 2003, stepping out and
+// shrinkage) of log a, then thetaMoves rounds of random-walk Metropolis
+// proposals for log k and for log s.
 func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 	g := &s.segs[c]
 	t := g.theta
@@ -295,6 +307,14 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		return pr.LogA.logProb(la) + nTot*la + math.Exp(la)*sumG
 	}, 1, src)
 
+	// log k and log s: random-walk Metropolis, one coordinate at a
+	// time, with a step that shrinks like 1/sqrt(number of values). A
+	// member-pass per proposal is the whole cost, so a few proposals
+	// replace the ten or so passes a slice update needs once the
+	// conditional is much narrower than the prior. The step depends only
+	// on the assignments, which this move does not change, so each
+	// proposal is a symmetric Metropolis step and leaves the conditional
+	// invariant.
 	full := func(th Theta) float64 {
 		k := th.kernel()
 		ll := pr.LogBase(th)
@@ -303,16 +323,23 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		}
 		return ll
 	}
-	t.LogK = sliceSample(t.LogK, func(v float64) float64 {
-		th := t
-		th.LogK = v
-		return full(th)
-	}, 1, src)
-	t.LogS = sliceSample(t.LogS, func(v float64) float64 {
-		th := t
-		th.LogS = v
-		return full(th)
-	}, 1, src)
+	cur := full(t)
+	stepK := math.Min(pr.LogK.Sigma, thetaStepK/math.Sqrt(1+nTot))
+	for r := 0; r < thetaMoves; r++ {
+		prop := t
+		prop.LogK += stepK * src.NormFloat64()
+		if lp := full(prop); math.Log1p(-src.Float64()) < lp-cur {
+			t, cur = prop, lp
+		}
+		// The spread of log s given k narrows like 1/k; k is held
+		// fixed by this proposal, so scaling by it keeps it symmetric.
+		stepS := math.Min(pr.LogS.Sigma, thetaStepS/(math.Exp(t.LogK)*math.Sqrt(1+nTot)))
+		prop = t
+		prop.LogS += stepS * src.NormFloat64()
+		if lp := full(prop); math.Log1p(-src.Float64()) < lp-cur {
+			t, cur = prop, lp
+		}
+	}
 	g.setTheta(t)
 }
 
