@@ -81,13 +81,16 @@
 // and the products touched since the last settle are reassigned in every
 // particle, so copies diverge. Settle resamples if needed and runs the
 // rejuvenation budget: Sweeps passes, each reassigning the touched
-// products and a random share of the others (Algorithm 8), updating the
-// kernel of each segment c that holds t_c touched products with
-// probability min(1, 2 t_c / n_c), and updating alpha; so a settle costs
-// in proportion to the changes it absorbs. SettleRefit, at the end of a
-// refit, makes RefitSweeps passes over every product and every segment.
-// Each move leaves the current posterior invariant (the choice of
-// segments depends only on assignments the kernel update leaves alone). Diversity counts distinct ancestors since
+// products and, if the particles were resampled since the last settle, a
+// random share of the others (Algorithm 8), updating the kernel of each segment c that holds t_c
+// touched products with probability min(1, 2 t_c / n_c), and updating
+// alpha; so a settle costs in proportion to the changes it absorbs.
+// SettleRefit, at the end of a refit, makes RefitSweeps passes over every
+// product and every segment. Each move leaves the current posterior
+// invariant: which products and segments are moved is chosen
+// independently of the state, or from assignments the kernel update
+// leaves alone. Without a resampling no move is needed for correctness,
+// so a settle after a single product's refit costs little. Diversity counts distinct ancestors since
 // the start, which shows path degeneracy.
 //
 // Every particle draws from its own stream, seeded for each operation from

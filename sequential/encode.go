@@ -9,10 +9,12 @@ import (
 )
 
 // encodingVersion is the first byte of every encoded particle system.
-// Version 1 layout (little-endian; strings and byte blobs length-prefixed
+// Version 2 layout (little-endian; strings and byte blobs length-prefixed
 // with a uvarint; counts are uvarints, floats are IEEE-754 bits):
 //
 //	version byte
+//	resampled-since-the-last-settle byte (0 or 1; absent in version 1,
+//	  which DecodeParticles still reads, taking it as 0)
 //	config: aux, particles, ess fraction, resampler, sweeps, random share, refit sweeps,
 //	  keep sweeps
 //	prior: count a, count b, (mu, sigma) of log a, log k, log s, alpha shape, alpha rate
@@ -25,7 +27,7 @@ import (
 //	  reported, considered, then its free-segment list
 //	kept-draws flag byte; if 1, per particle a count and per kept draw its
 //	  log weight, alpha, segment count and thetas, label count and labels
-const encodingVersion = 1
+const encodingVersion = 2
 
 // ErrEncoding reports a particle-system encoding that cannot be decoded.
 var ErrEncoding = errors.New("sequential: bad particle-system encoding")
@@ -47,6 +49,11 @@ func (e *encoder) blob(v []byte) {
 func (ps *Particles) Encode() []byte {
 	e := &encoder{b: make([]byte, 0, 1024+len(ps.parts)*(len(ps.slots)*2+64))}
 	e.b = append(e.b, encodingVersion)
+	if ps.resampledSince {
+		e.b = append(e.b, 1)
+	} else {
+		e.b = append(e.b, 0)
+	}
 	c := ps.cfg
 	e.i(c.Aux)
 	e.i(c.Particles)
@@ -220,13 +227,21 @@ func (d *decoder) bytes(what string) []byte {
 // sets the goroutines used from then on (0 = GOMAXPROCS). Errors wrap
 // ErrEncoding.
 func DecodeParticles(b []byte, workers int) (*Particles, error) {
-	if len(b) == 0 || b[0] != encodingVersion {
-		if len(b) == 0 {
-			return nil, fmt.Errorf("%w: empty", ErrEncoding)
-		}
-		return nil, fmt.Errorf("%w: version %d, want %d", ErrEncoding, b[0], encodingVersion)
+	if len(b) == 0 {
+		return nil, fmt.Errorf("%w: empty", ErrEncoding)
+	}
+	if b[0] != 1 && b[0] != encodingVersion {
+		return nil, fmt.Errorf("%w: version %d, want 1 or %d", ErrEncoding, b[0], encodingVersion)
 	}
 	d := &decoder{b: b[1:]}
+	resampledSince := false
+	if b[0] >= 2 {
+		if len(d.b) == 0 || d.b[0] > 1 {
+			return nil, fmt.Errorf("%w: resampled-since-settle byte missing or not 0/1", ErrEncoding)
+		}
+		resampledSince = d.b[0] == 1
+		d.b = d.b[1:]
+	}
 	const big = 1 << 30
 	var c ParticleConfig
 	c.Aux = d.i("aux", 1<<16)
@@ -249,7 +264,7 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if err := c.Validate(); err != nil {
 		return nil, fmt.Errorf("%w: %w", ErrEncoding, err)
 	}
-	ps := &Particles{cfg: c, prior: c.Prior, index: map[string]int{}}
+	ps := &Particles{cfg: c, prior: c.Prior, index: map[string]int{}, resampledSince: resampledSince}
 	ps.master = rand.NewPCG(0, 0)
 	if err := ps.master.UnmarshalBinary(d.bytes("generator")); err != nil && d.err == nil {
 		return nil, fmt.Errorf("%w: generator: %w", ErrEncoding, err)

@@ -54,7 +54,8 @@ type ParticleConfig struct {
 	ESSFraction float64
 	Resampler   Resampler
 	// Sweeps is the number of rejuvenation passes at a settle; each pass
-	// reassigns the products touched since the last settle plus a random
+	// reassigns the products touched since the last settle plus, when the
+	// particles were resampled since the last settle, a random
 	// RandomShare of the others, then refreshes the kernel of each
 	// segment holding t touched products of n with probability
 	// min(1, 2t/n), and alpha.
@@ -77,8 +78,9 @@ type ParticleConfig struct {
 
 // DefaultParticleConfig returns P = 256, m = 3, resampling below P/2 with
 // the systematic scheme, 2 rejuvenation sweeps per settle over the touched
-// products plus 10% of the rest, 10 sweeps over all products at the end of
-// a refit, and the states of the last 4 sweeps kept as draws.
+// products plus, after a resampling, 10% of the rest, 10 sweeps over all
+// products at the end of a refit, and the states of the last 4 sweeps kept
+// as draws.
 func DefaultParticleConfig() ParticleConfig {
 	return ParticleConfig{Prior: DefaultPrior(), Aux: 3, Particles: 256, ESSFraction: 0.5,
 		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1, RefitSweeps: 10, KeepSweeps: 4}
@@ -138,6 +140,8 @@ type Particles struct {
 	origin  []int // index of each particle's ancestor at the last reset
 	touched []int // slots changed since the last settle, in order
 	isTouch []bool
+	// resampledSince records a resampling since the last settle (saved).
+	resampledSince bool
 
 	logEvidence float64 // running sum of log normalised incremental weights
 
@@ -459,7 +463,7 @@ func (ps *Particles) Remove(id string) error {
 		ps.touched = ps.touched[:k]
 	}
 	if collapsed {
-		ps.settle(max(ps.cfg.RefitSweeps, 1), 1)
+		ps.settle(max(ps.cfg.RefitSweeps, 1), true)
 	} else {
 		ps.maybeResample()
 	}
@@ -622,6 +626,7 @@ func (ps *Particles) resample() {
 	}
 	ps.parts = next
 	ps.origin = origin
+	ps.resampledSince = true
 	for p := range ps.logw {
 		ps.logw[p] = 0
 	}
@@ -691,17 +696,17 @@ func residualResample(w []float64, src *rand.Rand) []int {
 // which leave the current posterior invariant, and clears the touched set.
 // It reports whether it resampled.
 func (ps *Particles) Settle() bool {
-	return ps.settle(ps.cfg.Sweeps, ps.cfg.RandomShare)
+	return ps.settle(ps.cfg.Sweeps, false)
 }
 
 // SettleRefit ends a refit: a Settle whose rejuvenation makes RefitSweeps
 // passes over every product, so that the number of segments and the
 // kernels catch up with a whole refit's worth of changes.
 func (ps *Particles) SettleRefit() bool {
-	return ps.settle(ps.cfg.RefitSweeps, 1)
+	return ps.settle(ps.cfg.RefitSweeps, true)
 }
 
-func (ps *Particles) settle(sweeps int, share float64) bool {
+func (ps *Particles) settle(sweeps int, full bool) bool {
 	resampled := false
 	if ps.ESS() < ps.cfg.ESSFraction*float64(len(ps.parts)) {
 		ps.resample()
@@ -712,6 +717,15 @@ func (ps *Particles) settle(sweeps int, share float64) bool {
 		ps.kept = make([][]Draw, len(ps.parts))
 	}
 	keepFrom := sweeps - ps.cfg.KeepSweeps
+	// Copies made by a resampling since the last settle share the
+	// assignments of the untouched products; a random share of those is
+	// moved so that they diverge. Without a resampling the particles are
+	// still a weighted sample of the current posterior and only the
+	// touched products are moved.
+	share := 0.0
+	if resampled || ps.resampledSince {
+		share = ps.cfg.RandomShare
+	}
 	ps.forEach(func(p int, st *State, src *rand.Rand) {
 		var mem [][]int
 		ps.kept[p] = ps.kept[p][:0]
@@ -719,7 +733,7 @@ func (ps *Particles) settle(sweeps int, share float64) bool {
 			for _, i := range touched {
 				st.reassign(i, src)
 			}
-			if share >= 1 {
+			if full {
 				for i, d := range st.data {
 					if d != nil && !ps.isTouch[i] {
 						st.reassign(i, src)
@@ -733,7 +747,7 @@ func (ps *Particles) settle(sweeps int, share float64) bool {
 				}
 			}
 			mem = st.members(mem)
-			if share >= 1 {
+			if full {
 				for c := range st.segs {
 					if st.segs[c].size > 0 {
 						st.updateTheta(uint16(c), mem[c], src)
@@ -753,11 +767,13 @@ func (ps *Particles) settle(sweeps int, share float64) bool {
 		ps.isTouch[s] = false
 	}
 	ps.touched = ps.touched[:0]
+	ps.resampledSince = false
 	return resampled
 }
 
 // SetRejuvenation changes the move budget of later settles: sweeps passes,
-// each over the touched products plus a random share of the others.
+// each over the touched products plus, after a resampling, a random share
+// of the others.
 func (ps *Particles) SetRejuvenation(sweeps int, share float64) {
 	ps.cfg.Sweeps, ps.cfg.RandomShare = sweeps, share
 }
