@@ -155,7 +155,8 @@ func (g agreement) meets() bool {
 // time the particle updater needs to bring the posterior up to date after
 // (a) a whole refit of N = 300 products and (b) a single product's refit,
 // against re-running the batch sampler from scratch until it reaches the
-// same agreement with a 20,000-sweep reference. Run it once:
+// same agreement with a 20,000-sweep reference (in two of three runs).
+// Run it once:
 //
 //	go test -run XXX -bench RefitVsBatch -benchtime 1x ./sequential/
 func BenchmarkRefitVsBatch(b *testing.B) {
@@ -199,27 +200,47 @@ func BenchmarkRefitVsBatch(b *testing.B) {
 	g := compare(t, ps.Draws(), ref, data)
 	b.Logf("particles after the refit: %+v, meets targets %v", g, g.meets())
 
-	// One product's refit: Replace and the default settle.
-	one := products[17]
-	synthRedraw(cfg, &one, src)
-	start = time.Now()
-	if _, err := ps.Replace(one.ID, one.Datum()); err != nil {
-		b.Fatal(err)
+	// One product's refit: Replace and the default settle, timed as the
+	// mean over 20 such refits one after the other (so the occasional
+	// resampling and its moves are counted at their rate).
+	const singles = 20
+	var singleCPU time.Duration
+	for k, i := 0, 17; k < singles; k, i = k+1, i+1 {
+		if i%20 == 7 { // removed above
+			i++
+		}
+		one := products[i]
+		synthRedraw(cfg, &one, src)
+		start = time.Now()
+		if _, err := ps.Replace(one.ID, one.Datum()); err != nil {
+			b.Fatal(err)
+		}
+		ps.Settle()
+		singleCPU += time.Since(start)
 	}
-	ps.Settle()
-	singleCPU := time.Since(start)
+	singleCPU /= singles
 
 	// The batch sampler from scratch, doubling its length until it agrees
-	// with the reference as well as the particles do.
+	// with the reference: at each length three runs (seeds 3, 4, 5), and
+	// the length counts once two of the three meet the levels; its CPU
+	// is the mean of the three. One lucky run does not set the baseline.
 	var batchCPU time.Duration
 	for sweeps := 250; sweeps <= 16000; sweeps *= 2 {
-		start = time.Now()
-		draws := gibbsReference(t, data, sweeps, 3)
-		d := time.Since(start)
-		gb := compare(t, draws, ref, data)
-		b.Logf("batch %5d sweeps: %+v in %v", sweeps, gb, d)
-		if gb.meets() {
-			batchCPU = d
+		var sum time.Duration
+		met := 0
+		for seed := uint64(3); seed <= 5; seed++ {
+			start = time.Now()
+			draws := gibbsReference(t, data, sweeps, seed)
+			d := time.Since(start)
+			sum += d
+			gb := compare(t, draws, ref, data)
+			b.Logf("batch %5d sweeps, seed %d: %+v in %v", sweeps, seed, gb, d)
+			if gb.meets() {
+				met++
+			}
+		}
+		if met >= 2 {
+			batchCPU = sum / 3
 			break
 		}
 	}

@@ -543,9 +543,8 @@ func exactParticles(t testing.TB, prior Prior, data []*Datum, particles int, see
 		}
 		ps.Settle()
 	}
-	ps.SetRejuvenation(4, 1.0)
 	for j := 0; j < extra; j++ {
-		ps.Settle()
+		ps.SettleFull(4)
 	}
 	return ps
 }

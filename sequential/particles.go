@@ -576,21 +576,30 @@ func (s *State) refreshSmallSegments(touched []int, src *rand.Rand) {
 // the category's size. The choice depends only on the assignments and
 // the touched set, which the update does not change, so each chosen
 // update, and the whole move, leaves the posterior invariant.
-func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Rand) {
+func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Rand) [][]int {
 	count := make([]int, len(s.segs))
 	for _, i := range touched {
 		if c := s.label(i); c != Absent {
 			count[c]++
 		}
 	}
+	var pick []uint16
 	for c, t := range count {
 		if t == 0 {
 			continue
 		}
 		if n := s.segs[c].size; 2*t >= n || src.Float64()*float64(n) < 2*float64(t) {
-			s.updateTheta(uint16(c), mem[c], src)
+			pick = append(pick, uint16(c))
 		}
 	}
+	if len(pick) == 0 {
+		return mem // no member lists needed: skip the pass over all slots
+	}
+	mem = s.members(mem)
+	for _, c := range pick {
+		s.updateTheta(c, mem[c], src)
+	}
+	return mem
 }
 
 // resample draws P ancestors by the configured scheme and resets the
@@ -706,6 +715,12 @@ func (ps *Particles) SettleRefit() bool {
 	return ps.settle(ps.cfg.RefitSweeps, true)
 }
 
+// SettleFull is SettleRefit with the given number of passes over every
+// product and segment instead of RefitSweeps.
+func (ps *Particles) SettleFull(sweeps int) bool {
+	return ps.settle(sweeps, true)
+}
+
 func (ps *Particles) settle(sweeps int, full bool) bool {
 	resampled := false
 	if ps.ESS() < ps.cfg.ESSFraction*float64(len(ps.parts)) {
@@ -746,15 +761,15 @@ func (ps *Particles) settle(sweeps int, full bool) bool {
 					}
 				}
 			}
-			mem = st.members(mem)
 			if full {
+				mem = st.members(mem)
 				for c := range st.segs {
 					if st.segs[c].size > 0 {
 						st.updateTheta(uint16(c), mem[c], src)
 					}
 				}
 			} else {
-				st.refreshTouchedSegments(touched, mem, src)
+				mem = st.refreshTouchedSegments(touched, mem, src)
 			}
 			st.updateAlpha(src)
 			if s >= keepFrom {

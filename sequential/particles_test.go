@@ -54,9 +54,7 @@ func buildParticles(t testing.TB, cfg sequential.ParticleConfig, products []synt
 			ps.Settle()
 		}
 	}
-	ps.SetRejuvenation(finalSweeps, 1)
-	ps.Settle()
-	ps.SetRejuvenation(cfg.Sweeps, cfg.RandomShare)
+	ps.SettleFull(finalSweeps)
 	return ps
 }
 
@@ -780,10 +778,8 @@ func getBenchSystem(b *testing.B, n, refits int) *benchSystem {
 			ps.Settle()
 		}
 	}
-	ps.SetRejuvenation(2, 1)
-	ps.Settle()
 	ps.SetRejuvenation(pc.Sweeps, pc.RandomShare)
-	ps.Settle()
+	ps.SettleFull(2)
 	bs.encoding = ps.Encode()
 	for r := 1; r <= refits; r++ {
 		prods := seq.Refit(r)
