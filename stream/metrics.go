@@ -46,6 +46,7 @@ type Metrics struct {
 	alerts    *prometheus.CounterVec
 	surprise  *prometheus.GaugeVec
 	refits    *prometheus.CounterVec
+	retries   prometheus.Counter
 	gaugeFunc []prometheus.Collector
 }
 
@@ -101,6 +102,10 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_refits_total",
 			Help: "Refits completed.",
 		}, []string{"category"}),
+		retries: prometheus.NewCounter(prometheus.CounterOpts{
+			Name: "rivalmix_rejected_publish_failures_total",
+			Help: "Failed attempts to publish a rejected input message to the rejected stream (each is retried).",
+		}),
 	}
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
@@ -119,7 +124,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits)
+			m.moves, m.alerts, m.surprise, m.refits, m.retries)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -131,6 +136,9 @@ func (m *Metrics) CountMessages(o Outcome, n int) {
 		m.messages.WithLabelValues(string(o)).Add(float64(n))
 	}
 }
+
+// CountRejectRetry counts one failed publication of a rejected message.
+func (m *Metrics) CountRejectRetry() { m.retries.Inc() }
 
 // ObserveUpdate records the time one message took to apply.
 func (m *Metrics) ObserveUpdate(d time.Duration) { m.update.Observe(d.Seconds()) }

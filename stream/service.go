@@ -34,6 +34,11 @@ type ServiceConfig struct {
 	Source string
 	// PerCategory overrides Worker for the named categories.
 	PerCategory map[string]WorkerConfig
+	// RejectRetry is how long a failed publication to the rejected stream
+	// is retried (pauses doubling from 100 ms to 5 s) before the service
+	// stops with the error; nothing is lost then either, since the batch
+	// was neither committed nor acked and is processed again at restart.
+	RejectRetry time.Duration
 }
 
 // workerConfig returns the settings of one category.
@@ -55,6 +60,7 @@ func DefaultServiceConfig() ServiceConfig {
 		FetchWait:   200 * time.Millisecond,
 		QuietPeriod: 10 * time.Minute,
 		Source:      "/rivalmix",
+		RejectRetry: 2 * time.Minute,
 	}
 }
 
@@ -79,6 +85,8 @@ func (c ServiceConfig) Validate() error {
 		return fmt.Errorf("stream: fetch wait %v, want > 0", c.FetchWait)
 	case c.QuietPeriod < 0:
 		return fmt.Errorf("stream: quiet period %v, want >= 0", c.QuietPeriod)
+	case c.RejectRetry < 0:
+		return fmt.Errorf("stream: reject retry %v, want >= 0", c.RejectRetry)
 	case c.Worker.BatchSize < 1:
 		return fmt.Errorf("stream: batch size %d, want >= 1", c.Worker.BatchSize)
 	case c.Source == "":
@@ -512,10 +520,26 @@ func (s *Service) viewsCategory(cat string) (CategoryView, bool) {
 }
 
 // reject publishes msg with the reason to the rejected stream, waits for
-// the stream's ack, then terminates the input message (rule 4).
+// the stream's ack, then terminates the input message (rule 4). A failed
+// publication is retried for RejectRetry; the message id makes a retry of
+// a publication that did land a duplicate the stream drops.
 func (s *Service) reject(ctx context.Context, msg jetstream.Msg, seq uint64, reason error) error {
-	if err := PublishRejected(ctx, s.js, s.cfg.Bus, msg.Subject(), msg.Data(), reason.Error(), seq); err != nil {
-		return fmt.Errorf("stream: publish rejected message %d: %w", seq, err)
+	pause := 100 * time.Millisecond
+	deadline := time.Now().Add(s.cfg.RejectRetry)
+	for attempt := 1; ; attempt++ {
+		err := PublishRejected(ctx, s.js, s.cfg.Bus, msg.Subject(), msg.Data(), reason.Error(), seq)
+		if err == nil {
+			break
+		}
+		if s.metrics != nil {
+			s.metrics.CountRejectRetry()
+		}
+		if !time.Now().Add(pause).Before(deadline) {
+			return fmt.Errorf("stream: publish rejected message %d (%d attempts over %v): %w", seq, attempt, s.cfg.RejectRetry, err)
+		}
+		s.lg.Warn("publishing a rejected message failed; retrying", "seq", seq, "attempt", attempt, "pause", pause, "err", err)
+		Sleep(ctx, pause)
+		pause = min(2*pause, 5*time.Second)
 	}
 	if err := msg.TermWithReason(reason.Error()); err != nil {
 		s.lg.Warn("terminate failed", "seq", seq, "err", err)

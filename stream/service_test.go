@@ -997,6 +997,80 @@ func TestServiceBadInput(t *testing.T) {
 	}
 }
 
+// TestServiceRejectRetry deletes the rejected stream before a bad message
+// arrives, so its publication fails, and creates the stream again a second
+// later: the service retries, keeps running, files the message with its
+// reason once, and applies the good messages around it.
+func TestServiceRejectRetry(t *testing.T) {
+	t.Parallel()
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	e := startTestServer(t)
+	_, js := connectTest(t, e.ClientURL())
+	cfg := testServiceConfig()
+	ensureStreams(t, ctx, js, cfg)
+	// The service creates the streams at start: delete the rejected one
+	// once it runs, then send the input.
+	in := startInstance(t, e.ClientURL(), filepath.Join(t.TempDir(), "state.db"), cfg, newTestLog(t), instanceOptions{})
+	for in.svc.Ready() != nil {
+		select {
+		case err := <-in.runErr:
+			t.Fatalf("service stopped: %v", err)
+		case <-ctx.Done():
+			t.Fatal("service never ready")
+		case <-time.After(10 * time.Millisecond):
+		}
+	}
+	if err := js.DeleteStream(ctx, cfg.Bus.RejectedStream); err != nil {
+		t.Fatalf("DeleteStream: %v", err)
+	}
+	const cat = "breakfast-cereal"
+	subj := DefaultInputPrefix + "." + cat
+	bad := `{"product":"P-2002","refit":"2026-W40","competitors":2,"relative":[0.5,0.4,0.3]}`
+	last := publishInput(t, ctx, js, []inputMsg{
+		{subject: subj, data: []byte(`{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.8,0.3]}`)},
+		{subject: subj, data: []byte(bad)},
+		{subject: subj, data: []byte(`{"product":"P-2003","refit":"2026-W40","competitors":10,"relative":[0.7]}`)},
+		{subject: subj, data: []byte(`{"refit":"2026-W40","complete":true,"expected":2}`)},
+	})
+	failures := func() float64 { return testutil.ToFloat64(in.svc.metrics.retries) }
+	for failures() < 2 {
+		select {
+		case err := <-in.runErr:
+			t.Fatalf("service stopped while the rejected stream was missing: %v", err)
+		case <-ctx.Done():
+			t.Fatal("no failed publication of the rejected message observed")
+		case <-time.After(10 * time.Millisecond):
+		}
+	}
+	if in.position() >= last {
+		t.Fatalf("position %d reached the end (%d) while the rejected message could not be filed", in.position(), last)
+	}
+	ensureStreams(t, ctx, js, cfg)
+	if stopped, err := in.waitDone(ctx, last, nil); stopped {
+		t.Fatalf("service stopped: %v", err)
+	}
+	msgs := streamMessages(t, ctx, js, cfg.Bus.RejectedStream)
+	if len(msgs) != 1 {
+		t.Fatalf("rejected stream holds %d messages, want 1", len(msgs))
+	}
+	if string(msgs[0].Data) != bad || !strings.Contains(msgs[0].Header.Get(HeaderReason), `field "relative"`) {
+		t.Errorf("rejected message %q with reason %q", msgs[0].Data, msgs[0].Header.Get(HeaderReason))
+	}
+	_, recs := snapshotOf(t, in.store, cat)
+	var ids []string
+	for _, r := range recs {
+		ids = append(ids, r.Product)
+	}
+	if !slices.Equal(ids, []string{"P-2001", "P-2003"}) {
+		t.Errorf("products applied %v, want P-2001, P-2003", ids)
+	}
+	t.Logf("%v failed publications before the stream came back", failures())
+	if err := in.stop(); err != nil {
+		t.Errorf("Run: %v", err)
+	}
+}
+
 // TestServiceBrokerRestart shuts the NATS server down right after a
 // commit, before its acks, and starts it again on the same store and
 // port. The service reconnects and finishes; every message is applied

@@ -30,7 +30,7 @@ type serviceFlags struct {
 	conn                                             stream.ConnectOptions
 	seed                                             uint64
 	particles, batch, fetch                          int
-	fetchWait, quiet                                 time.Duration
+	fetchWait, quiet, rejectRetry                    time.Duration
 	logLevel                                         string
 	replicas                                         int
 }
@@ -56,6 +56,7 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.IntVar(&f.fetch, "fetch", sc.FetchSize, "messages per fetch (one commit and ack each)")
 	fs.DurationVar(&f.fetchWait, "fetch-wait", sc.FetchWait, "longest wait for a fetch to fill")
 	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
+	fs.DurationVar(&f.rejectRetry, "reject-retry", sc.RejectRetry, "how long to retry filing a rejected message on the rejected stream before stopping (nothing is lost: the batch is processed again at restart)")
 	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
 	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream in a NATS cluster (3 across failure domains in production)")
 }
@@ -68,6 +69,7 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.FetchSize = f.fetch
 	sc.FetchWait = f.fetchWait
 	sc.QuietPeriod = f.quiet
+	sc.RejectRetry = f.rejectRetry
 	sc.Bus.Replicas = f.replicas
 	def, per, err := loadSettings(f.configFile, sc.Worker)
 	if err != nil {
