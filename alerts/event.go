@@ -171,7 +171,7 @@ type Born struct {
 	Segment  string `json:"segment"`
 	// Size is the number of products in the segment.
 	Size int `json:"size"`
-	// Medians are the posterior mean medians of the strongest, second and
+	// Medians are the posterior medians (over draws) of the strongest, second and
 	// third strongest relative cross-elasticity of the segment's members
 	// (sequential.SegmentSummary.Median), as far as defined.
 	Medians []float64 `json:"medians"`

@@ -3,6 +3,7 @@ package sequential
 import (
 	"fmt"
 	"math"
+	"sort"
 
 	"gonum.org/v1/gonum/stat/distuv"
 )
@@ -78,10 +79,14 @@ type Summary struct {
 type SegmentSummary struct {
 	// Members are the products of the segment, ascending.
 	Members []int
-	// Median[j-1], j = 1, 2, 3, is the posterior mean, over draws and over
-	// the members with L_i >= j, of the median of the j-th largest of L_i
-	// iid draws from the member's segment kernel in that draw (relative
-	// cross-elasticity). NaN when no member has L_i >= j.
+	// Median[j-1], j = 1, 2, 3, is the weighted median over draws of the
+	// mean, over the members with L_i >= j, of the median of the j-th
+	// largest of L_i iid draws from the member's segment kernel in that
+	// draw (relative cross-elasticity). The median over draws, not the
+	// mean, because a draw that puts a member without reported values in
+	// a segment of its own gives it a kernel from the base measure, whose
+	// order-statistic medians can be astronomically large. NaN when no
+	// member has L_i >= j.
 	Median [3]float64
 	// MeanReported is the posterior mean, over draws and members, of the
 	// expected number of reported competitors L_i E[p | other data], with
@@ -231,8 +236,10 @@ func segmentSummaries(draws []Draw, w []float64, data []*Datum, partition []int,
 		segs[c].Members = append(segs[c].Members, i)
 	}
 	medians := newOrderMedians()
-	medSum := make([][3]float64, k)
-	medCount := make([][3]int, k) // members with L >= j
+	medDraw := make([][3]float64, k)   // this draw's sums over members
+	perDraw := make([][3][]float64, k) // per segment and j, one mean per draw
+	var drawW []float64                // weights of the draws in perDraw
+	medCount := make([][3]int, k)      // members with L >= j
 	repSum := make([]float64, k)
 	for i, c := range partition {
 		for j := 0; j < 3; j++ {
@@ -263,6 +270,9 @@ func segmentSummaries(draws []Draw, w []float64, data []*Datum, partition []int,
 			reported[l] += data[i].N()
 			considered[l] += data[i].L()
 		}
+		for c := range medDraw {
+			medDraw[c] = [3]float64{}
+		}
 		for i, l := range dr.Labels {
 			di, c := data[i], partition[i]
 			km := &cache[l]
@@ -272,12 +282,20 @@ func segmentSummaries(draws []Draw, w []float64, data []*Datum, partition []int,
 			}
 			for j := 0; j < 3; j++ {
 				if di.L() > j {
-					medSum[c][j] += w[d] * km.med[j]
+					medDraw[c][j] += km.med[j]
 				}
 			}
 			a := prior.CountA + float64(reported[l]-di.N())
 			b := prior.CountB + float64(considered[l]-reported[l]-(di.L()-di.N()))
 			repSum[c] += w[d] * float64(di.L()) * a / (a + b)
+		}
+		drawW = append(drawW, w[d])
+		for c := range medDraw {
+			for j := 0; j < 3; j++ {
+				if medCount[c][j] > 0 {
+					perDraw[c][j] = append(perDraw[c][j], medDraw[c][j]/float64(medCount[c][j]))
+				}
+			}
 		}
 	}
 	for c := range segs {
@@ -286,11 +304,33 @@ func segmentSummaries(draws []Draw, w []float64, data []*Datum, partition []int,
 				segs[c].Median[j] = math.NaN()
 				continue
 			}
-			segs[c].Median[j] = medSum[c][j] / wsum / float64(medCount[c][j])
+			segs[c].Median[j] = weightedMedian(perDraw[c][j], drawW)
 		}
 		segs[c].MeanReported = repSum[c] / wsum / float64(len(segs[c].Members))
 	}
 	return segs
+}
+
+// weightedMedian returns the smallest x[i] at which the cumulative weight,
+// in ascending order of x, reaches half the total.
+func weightedMedian(x, w []float64) float64 {
+	idx := make([]int, len(x))
+	for i := range idx {
+		idx[i] = i
+	}
+	sort.Slice(idx, func(a, b int) bool { return x[idx[a]] < x[idx[b]] })
+	total := 0.0
+	for _, v := range w {
+		total += v
+	}
+	acc := 0.0
+	for _, i := range idx {
+		acc += w[i]
+		if acc >= total/2 {
+			return x[i]
+		}
+	}
+	return x[idx[len(idx)-1]]
 }
 
 func resetInts(x []int, n int) []int {

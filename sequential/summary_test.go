@@ -511,6 +511,35 @@ func TestNextMixtureQuantileAndExceed(t *testing.T) {
 	}
 }
 
+// TestSegmentMedianRobust gives one draw in twenty a kernel of the kind a
+// member without reported values gets when it sits alone (k = e^-3, from
+// the base measure's tail): the median of the largest of its L = 10 draws
+// is astronomical, and a posterior mean over draws would report it. The
+// summary must stay at the other draws' value: the largest of L iid
+// Exponential(s) draws has CDF (1 - e^(-x/s))^L (textbook fact), so its
+// median is -s ln(1 - 2^(-1/L)).
+func TestSegmentMedianRobust(t *testing.T) {
+	t.Parallel()
+	const s, l = 0.4, 10
+	d := MustDatum([]float64{0.3}, l)
+	var draws []Draw
+	for i := 0; i < 20; i++ {
+		th := Theta{LogA: 0, LogK: 0, LogS: math.Log(s)}
+		if i == 7 {
+			th.LogK = -3
+		}
+		draws = append(draws, Draw{Labels: []uint16{0}, Segments: []Theta{th}, Alpha: 1})
+	}
+	if med := newOrderMedians().of(draws[7].Segments[0].EW(), l)[0]; !(med > 1e6) {
+		t.Fatalf("the outlying kernel's median is %v; the test needs it large", med)
+	}
+	sum, err := Summarize(draws, []*Datum{&d}, DefaultSummaryOptions())
+	if err != nil {
+		t.Fatal(err)
+	}
+	wantClose(t, "median of the largest of 10", sum.Segments[0].Median[0], -s*math.Log(1-math.Pow(2, -1.0/l)), 1e-12)
+}
+
 func TestSegmentMedianExponential(t *testing.T) {
 	t.Parallel()
 	// With a = 1, k = 1 the kernel is Exponential with scale s, whose

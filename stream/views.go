@@ -72,7 +72,7 @@ type SegmentView struct {
 	ID string `json:"id"`
 	// Size is the number of member products.
 	Size int `json:"size"`
-	// Medians are the posterior mean medians of the strongest, second and
+	// Medians are the posterior medians (over draws) of the strongest, second and
 	// third strongest relative cross-elasticity of a member (null where
 	// no member has that many candidates).
 	Medians [3]Float `json:"medians"`
