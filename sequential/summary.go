@@ -3,7 +3,9 @@ package sequential
 import (
 	"fmt"
 	"math"
+	"runtime"
 	"sort"
+	"sync"
 
 	"gonum.org/v1/gonum/stat/distuv"
 )
@@ -384,20 +386,35 @@ func (m orderMedians) of(ew ExpWeibull, l int) [3]float64 {
 // nextSummaries mixes the next-value law of every product over the draws.
 func nextSummaries(draws []Draw, w []float64, data []*Datum, opt SummaryOptions) []NextSummary {
 	out := make([]NextSummary, len(data))
-	var mix MixedNext
-	for i, di := range data {
-		mix.fill(draws, w, di, i)
-		ns := NextSummary{Defined: mix.Defined(), Threshold: opt.Threshold}
-		if !ns.Defined {
-			ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
-		} else {
-			ns.PExceed = mix.Exceed(opt.Threshold)
-			ns.Median = mix.Quantile(0.5)
-			ns.Lo = mix.Quantile(opt.QuantileLo)
-			ns.Hi = mix.Quantile(opt.QuantileHi)
-		}
-		out[i] = ns
+	// Products are independent: split them over the cores, each worker
+	// writing only its own entries, so the result does not depend on
+	// the number of workers.
+	workers := min(runtime.GOMAXPROCS(0), max(len(data)/64, 1))
+	var wg sync.WaitGroup
+	chunk := (len(data) + workers - 1) / workers
+	for lo := 0; lo < len(data); lo += chunk {
+		hi := min(lo+chunk, len(data))
+		wg.Add(1)
+		go func() {
+			defer wg.Done()
+			var mix MixedNext
+			for i := lo; i < hi; i++ {
+				di := data[i]
+				mix.fill(draws, w, di, i)
+				ns := NextSummary{Defined: mix.Defined(), Threshold: opt.Threshold}
+				if !ns.Defined {
+					ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
+				} else {
+					ns.PExceed = mix.Exceed(opt.Threshold)
+					ns.Median = mix.Quantile(0.5)
+					ns.Lo = mix.Quantile(opt.QuantileLo)
+					ns.Hi = mix.Quantile(opt.QuantileHi)
+				}
+				out[i] = ns
+			}
+		}()
 	}
+	wg.Wait()
 	return out
 }
 
