@@ -973,12 +973,7 @@ func TestServiceBadInput(t *testing.T) {
 			t.Errorf("%s: %s header %q, want %q", c.name, HeaderInputSubject, m.Header.Get(HeaderInputSubject), c.subject)
 		}
 	}
-	_, recs := snapshotOf(t, in.store, cat)
-	var ids []string
-	for _, r := range recs {
-		ids = append(ids, r.Product)
-	}
-	if !slices.Equal(ids, []string{"P-2001", "P-2002", "P-2003"}) {
+	if ids := appliedProducts(t, in, cat); !slices.Equal(ids, []string{"P-2001", "P-2002", "P-2003"}) {
 		t.Errorf("products applied %v, want P-2001, P-2002, P-2003", ids)
 	}
 	if got := testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeRejected))); int(got) != len(cases) {
@@ -997,6 +992,33 @@ func TestServiceBadInput(t *testing.T) {
 	}
 }
 
+// appliedProducts returns the products of category cat in the state file.
+func appliedProducts(t *testing.T, in *instance, cat string) []string {
+	t.Helper()
+	_, recs := snapshotOf(t, in.store, cat)
+	var ids []string
+	for _, r := range recs {
+		ids = append(ids, r.Product)
+	}
+	return ids
+}
+
+// waitFor polls cond every 10 ms until it holds; it fails the test if the
+// service stops first or ctx ends.
+func (in *instance) waitFor(ctx context.Context, what string, cond func() bool) {
+	in.t.Helper()
+	for !cond() {
+		select {
+		case err := <-in.runErr:
+			in.runErr <- err
+			in.t.Fatalf("service stopped while waiting for %s: %v", what, err)
+		case <-ctx.Done():
+			in.t.Fatalf("gave up waiting for %s: %v", what, ctx.Err())
+		case <-time.After(10 * time.Millisecond):
+		}
+	}
+}
+
 // TestServiceRejectRetry deletes the rejected stream before a bad message
 // arrives, so its publication fails, and creates the stream again a second
 // later: the service retries, keeps running, files the message with its
@@ -1012,15 +1034,7 @@ func TestServiceRejectRetry(t *testing.T) {
 	// The service creates the streams at start: delete the rejected one
 	// once it runs, then send the input.
 	in := startInstance(t, e.ClientURL(), filepath.Join(t.TempDir(), "state.db"), cfg, newTestLog(t), instanceOptions{})
-	for in.svc.Ready() != nil {
-		select {
-		case err := <-in.runErr:
-			t.Fatalf("service stopped: %v", err)
-		case <-ctx.Done():
-			t.Fatal("service never ready")
-		case <-time.After(10 * time.Millisecond):
-		}
-	}
+	in.waitFor(ctx, "the service to be ready", func() bool { return in.svc.Ready() == nil })
 	if err := js.DeleteStream(ctx, cfg.Bus.RejectedStream); err != nil {
 		t.Fatalf("DeleteStream: %v", err)
 	}
@@ -1034,15 +1048,7 @@ func TestServiceRejectRetry(t *testing.T) {
 		{subject: subj, data: []byte(`{"refit":"2026-W40","complete":true,"expected":2}`)},
 	})
 	failures := func() float64 { return testutil.ToFloat64(in.svc.metrics.retries) }
-	for failures() < 2 {
-		select {
-		case err := <-in.runErr:
-			t.Fatalf("service stopped while the rejected stream was missing: %v", err)
-		case <-ctx.Done():
-			t.Fatal("no failed publication of the rejected message observed")
-		case <-time.After(10 * time.Millisecond):
-		}
-	}
+	in.waitFor(ctx, "two failed publications of the rejected message", func() bool { return failures() >= 2 })
 	if in.position() >= last {
 		t.Fatalf("position %d reached the end (%d) while the rejected message could not be filed", in.position(), last)
 	}
@@ -1057,12 +1063,7 @@ func TestServiceRejectRetry(t *testing.T) {
 	if string(msgs[0].Data) != bad || !strings.Contains(msgs[0].Header.Get(HeaderReason), `field "relative"`) {
 		t.Errorf("rejected message %q with reason %q", msgs[0].Data, msgs[0].Header.Get(HeaderReason))
 	}
-	_, recs := snapshotOf(t, in.store, cat)
-	var ids []string
-	for _, r := range recs {
-		ids = append(ids, r.Product)
-	}
-	if !slices.Equal(ids, []string{"P-2001", "P-2003"}) {
+	if ids := appliedProducts(t, in, cat); !slices.Equal(ids, []string{"P-2001", "P-2003"}) {
 		t.Errorf("products applied %v, want P-2001, P-2003", ids)
 	}
 	t.Logf("%v failed publications before the stream came back", failures())
