@@ -8,6 +8,7 @@ import (
 	"runtime"
 	"sort"
 	"sync"
+	"sync/atomic"
 )
 
 // Resampler names a resampling scheme.
@@ -244,14 +245,20 @@ func (ps *Particles) forEach(f func(p int, st *State, src *rand.Rand)) {
 		}
 		return
 	}
+	// Particles are handed out one at a time, so a worker that drew
+	// cheap particles takes more of them; each particle's result depends
+	// only on its own stream, not on which worker ran it.
 	var wg sync.WaitGroup
-	chunk := (P + w - 1) / w
-	for lo := 0; lo < P; lo += chunk {
-		hi := min(lo+chunk, P)
+	var next atomic.Int64
+	for range w {
 		wg.Add(1)
 		go func() {
 			defer wg.Done()
-			for p := lo; p < hi; p++ {
+			for {
+				p := int(next.Add(1) - 1)
+				if p >= P {
+					return
+				}
 				f(p, ps.parts[p], ps.streams[p])
 			}
 		}()
