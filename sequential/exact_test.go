@@ -841,8 +841,8 @@ func priorPredictiveLogLik(prior Prior, data []*Datum, src *rand.Rand) float64 {
 // log z = k log(y/s). Taking log G = -Inf there instead would form
 // (a-1)(-Inf) + (L-n) a (-Inf), NaN when a < 1, and 0 * (-Inf) = NaN
 // whenever n = L. Such thetas are 5 to 6 prior sigmas out, reachable by
-// the auxiliary draws of Algorithm 8 and by the slice sampler's stepping
-// out, and small relative elasticities bring them closer (y/s = 1e-5
+// the auxiliary draws of Algorithm 8 and by the kernel update's
+// proposals, and small relative elasticities bring them closer (y/s = 1e-5
 // underflows from k = 65). One NaN would make predictiveTerms' running
 // maximum NaN, that particle's increment NaN, and then every particle's
 // log weight NaN through the renormalisation in applyIncrements. The
@@ -1295,7 +1295,7 @@ func TestDecodeRejectsInconsistentState(t *testing.T) {
 				st.free = append(st.free, e) // consistent: one more empty segment
 				st.free[len(st.free)-1] = st.label(0)
 			}},
-		{"segment theta not finite", "Settle's slice sampler never terminates (its shrinkage loop compares NaNs)",
+		{"segment theta not finite", "Settle's slice update of log a never terminates (its shrinkage loop compares NaNs)",
 			func(ps *Particles) {
 				st := ps.parts[0]
 				c := st.label(0)

@@ -166,9 +166,9 @@ func batchMeanVar(x []float64, batches int) (mean, varOfMean float64) {
 }
 
 // TestGewekeJoint checks the batch sampler's moves (Algorithm 8
-// reassignment with p collapsed, slice updates of theta, Escobar-West
-// alpha) by Geweke's (2004) joint-distribution test on 5 products with
-// L = 4. With 7 statistics, |z| < 4 for all of them has a false-alarm
+// reassignment with p collapsed, the slice and Metropolis updates of
+// theta, Escobar-West alpha) by Geweke's (2004) joint-distribution test
+// on 5 products with L = 4. With 7 statistics, |z| < 4 for all of them has a false-alarm
 // chance below 1e-3 under correct code (normal tails), so a failure
 // means a real discrepancy; the seed is fixed.
 func TestGewekeJoint(t *testing.T) {
@@ -188,7 +188,7 @@ func TestGewekeJoint(t *testing.T) {
 }
 
 // TestGewekeDetectsBrokenUpdate shows the test above has power: the
-// sampler's slice update uses a base measure whose log-scale mean is
+// sampler's kernel update uses a base measure whose log-scale mean is
 // shifted by 0.4 from the one that generated the data, a bug of the size
 // of a wrong default. Some statistic must then leave |z| <= 4.
 func TestGewekeDetectsBrokenUpdate(t *testing.T) {
