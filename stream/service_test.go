@@ -561,10 +561,7 @@ func TestServiceEndToEnd(t *testing.T) {
 	t.Parallel()
 	ctx, cancel := context.WithTimeout(context.Background(), 90*time.Second)
 	defer cancel()
-	e := startTestServer(t)
-	_, js := connectTest(t, e.ClientURL())
-	cfg := testServiceConfig()
-	ensureStreams(t, ctx, js, cfg)
+	e, js, cfg := newTestBus(t, ctx)
 	cereal := newTestCategory("breakfast-cereal", 48, 1001, 11)
 	tea := newTestCategory("tea", 24, 3001, 12)
 	publishInput(t, ctx, js, refitMessages(0, cereal, tea))
@@ -752,10 +749,7 @@ func TestServiceRedelivery(t *testing.T) {
 	t.Parallel()
 	ctx, cancel := context.WithTimeout(context.Background(), 90*time.Second)
 	defer cancel()
-	e := startTestServer(t)
-	_, js := connectTest(t, e.ClientURL())
-	cfg := testServiceConfig()
-	ensureStreams(t, ctx, js, cfg)
+	e, js, cfg := newTestBus(t, ctx)
 	cereal := newTestCategory("breakfast-cereal", 32, 1001, 41)
 	input := refitMessages(0, cereal)
 	last := publishInput(t, ctx, js, input)
@@ -901,10 +895,7 @@ func TestServiceBadInput(t *testing.T) {
 	t.Parallel()
 	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
 	defer cancel()
-	e := startTestServer(t)
-	_, js := connectTest(t, e.ClientURL())
-	cfg := testServiceConfig()
-	ensureStreams(t, ctx, js, cfg)
+	e, js, cfg := newTestBus(t, ctx)
 	const cat = "breakfast-cereal"
 	subj := DefaultInputPrefix + "." + cat
 	oversized := `{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.5]}` + strings.Repeat(" ", cfg.Decode.MaxBytes)
@@ -992,6 +983,17 @@ func TestServiceBadInput(t *testing.T) {
 	}
 }
 
+// newTestBus starts an embedded server, connects to it and creates the
+// streams of the test service configuration, which it returns.
+func newTestBus(t *testing.T, ctx context.Context) (*Embedded, jetstream.JetStream, ServiceConfig) {
+	t.Helper()
+	e := startTestServer(t)
+	_, js := connectTest(t, e.ClientURL())
+	cfg := testServiceConfig()
+	ensureStreams(t, ctx, js, cfg)
+	return e, js, cfg
+}
+
 // appliedProducts returns the products of category cat in the state file.
 func appliedProducts(t *testing.T, in *instance, cat string) []string {
 	t.Helper()
@@ -1027,10 +1029,7 @@ func TestServiceRejectRetry(t *testing.T) {
 	t.Parallel()
 	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
 	defer cancel()
-	e := startTestServer(t)
-	_, js := connectTest(t, e.ClientURL())
-	cfg := testServiceConfig()
-	ensureStreams(t, ctx, js, cfg)
+	e, js, cfg := newTestBus(t, ctx)
 	// The service creates the streams at start: delete the rejected one
 	// once it runs, then send the input.
 	in := startInstance(t, e.ClientURL(), filepath.Join(t.TempDir(), "state.db"), cfg, newTestLog(t), instanceOptions{})
@@ -1180,10 +1179,7 @@ func TestServiceGracefulShutdown(t *testing.T) {
 	t.Parallel()
 	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
 	defer cancel()
-	e := startTestServer(t)
-	_, js := connectTest(t, e.ClientURL())
-	cfg := testServiceConfig()
-	ensureStreams(t, ctx, js, cfg)
+	e, js, cfg := newTestBus(t, ctx)
 	cereal := newTestCategory("breakfast-cereal", 40, 1001, 61)
 	tea := newTestCategory("tea", 24, 3001, 62)
 	publishInput(t, ctx, js, refitMessages(0, cereal, tea))
