@@ -268,7 +268,7 @@ func (s *State) members(buf [][]int) [][]int {
 // Tuned on simulated categories for acceptance rates of about 0.3 to 0.6
 // over segments of 3 to 1,500 products (a rate near 0.44 is the usual
 // aim for one-dimensional random walks; common practice).
-var (
+const (
 	thetaMoves             = 2
 	thetaStepK, thetaStepS = 1.4, 1.6
 )
