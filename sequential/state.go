@@ -284,24 +284,21 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 	data := s.data
 	pr := s.prior
 
-	// log a: for fixed k and s the value part is linear in a and log a:
-	//   n_tot log a + a * (sum_i sum_m log G(y_im) + (L_i-n_i) log G(y_in)) + const
-	// so one pass over the members makes each evaluation O(1).
+	// log a: for fixed k and s the value part is linear in a and log a
+	// (valueSplit), so one pass over the members makes each evaluation
+	// O(1), and gives the value part at the new a for the Metropolis
+	// steps below without another pass.
 	kn := t.kernel()
-	nTot, sumG := 0.0, 0.0
+	nTot, sumG, rest := 0.0, 0.0, 0.0
 	for _, i := range mem {
 		d := data[i]
-		n := d.N()
-		if n == 0 {
+		if d.N() == 0 {
 			continue
 		}
-		nTot += float64(n)
-		var lg float64
-		for _, ly := range d.logY {
-			lg = logGFromLogZ(kn.k * (ly - kn.logS))
-			sumG += lg
-		}
-		sumG += float64(d.L()-n) * lg
+		r, g := d.valueSplit(&kn, t.LogK-t.LogS)
+		nTot += float64(d.N())
+		rest += r
+		sumG += g
 	}
 	t.LogA = sliceSample(t.LogA, func(la float64) float64 {
 		return pr.LogA.logProb(la) + nTot*la + math.Exp(la)*sumG
@@ -323,7 +320,7 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		}
 		return ll
 	}
-	cur := full(t)
+	cur := pr.LogBase(t) + rest + nTot*t.LogA + math.Exp(t.LogA)*sumG
 	stepK := math.Min(pr.LogK.Sigma, thetaStepK/math.Sqrt(1+nTot))
 	for r := 0; r < thetaMoves; r++ {
 		prop := t
@@ -341,6 +338,39 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		}
 	}
 	g.setTheta(t)
+}
+
+// valueSplit splits the datum's value log density (valueLogLik) at the
+// kernel's k and s into the parts that do not and that do depend on a:
+//
+//	valueLogLik = rest + n log a + a g
+//	rest = log(L!/(L-n)!) + n (log k - log s) + (k-1) sum_m log(y_m/s) - sum_m z_m - sum_m log G_m
+//	g    = sum_m log G_m + (L-n) log G_n
+//
+// with z_m = (y_m/s)^k and G_m = 1 - exp(-z_m); logKS = log k - log s.
+// For n = 0 both are 0.
+func (d *Datum) valueSplit(kn *kernel, logKS float64) (rest, g float64) {
+	n := len(d.logY)
+	if n == 0 {
+		return 0, 0
+	}
+	var sumLx, sumZ, sumLG, lg float64
+	for _, ly := range d.logY {
+		lx := ly - kn.logS
+		t := kn.k * lx
+		z := math.Exp(t)
+		sumLx += lx
+		sumZ += z
+		if t < -30 {
+			lg = t - 0.5*z // see logGFromLogZ
+		} else {
+			lg = Log1mExp(z)
+		}
+		sumLG += lg
+	}
+	rest = d.logFall + float64(n)*logKS + (kn.k-1)*sumLx - sumZ - sumLG
+	g = sumLG + float64(d.l-n)*lg
+	return rest, g
 }
 
 // updateAlpha draws alpha given the number of segments K and products N
