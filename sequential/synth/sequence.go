@@ -2,10 +2,18 @@ package synth
 
 import "math/rand/v2"
 
-// Sequence draws a run of weekly refits of one category: every refit
-// redraws each product's latent vector from its segment, and at refit
-// SwitchAt a chosen share of products moves to another segment for good.
+// Sequence draws a run of weekly refits of one category. By default every
+// refit redraws each product's latent vector from its segment (a refit
+// that shares nothing with the previous one: the hardest case for an
+// updater). With Drift > 0 a refit re-estimates the same competitors
+// instead (Perturb): what a weekly refit on one more week of sales mostly
+// looks like. Either way, at refit SwitchAt a chosen share of products
+// moves to another segment for good and is drawn afresh from it.
 type Sequence struct {
+	// Drift is the standard deviation of the log-scale estimation noise of
+	// a re-estimating refit; 0 (the default) redraws every product.
+	Drift float64
+
 	cfg      Config
 	products []Product
 	src      *rand.Rand
@@ -45,8 +53,14 @@ func (s *Sequence) Refit(r int) []Product {
 		p := &s.products[i]
 		if r == s.SwitchAt && s.Switched[i] && nseg > 1 {
 			p.Segment = (p.Segment + 1 + s.src.IntN(nseg-1)) % nseg
+			Redraw(s.cfg, p, s.src)
+			continue
 		}
-		Redraw(s.cfg, p, s.src)
+		if s.Drift > 0 {
+			Perturb(p, s.Drift, s.src)
+		} else {
+			Redraw(s.cfg, p, s.src)
+		}
 	}
 	return s.products
 }

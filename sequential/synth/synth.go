@@ -10,6 +10,7 @@ package synth
 import (
 	"encoding/json"
 	"fmt"
+	"math"
 	"math/rand/v2"
 	"sort"
 
@@ -107,6 +108,31 @@ func Redraw(cfg Config, p *Product, src *rand.Rand) {
 	}
 	p.Reported = p.Latent[:n:n]
 	p.Rivals = rivals(cfg, p.ID, l, src)
+}
+
+// Perturb re-estimates p's latent vector: each competitor's value is
+// multiplied by exp(sd * e) with e standard normal (log-scale estimation
+// noise), the vector is sorted again with its competitor ids, and the
+// report count stays. The new vector is fresh memory: slices handed out
+// before stay as they were.
+func Perturb(p *Product, sd float64, src *rand.Rand) {
+	l := len(p.Latent)
+	idx := make([]int, l)
+	vals := make([]float64, l)
+	for j := range idx {
+		idx[j] = j
+		vals[j] = p.Latent[j] * math.Exp(sd*src.NormFloat64())
+	}
+	sort.SliceStable(idx, func(a, b int) bool { return vals[idx[a]] > vals[idx[b]] })
+	latent := make([]float64, l)
+	rivals := make([]string, l)
+	for j, i := range idx {
+		latent[j] = vals[i]
+		rivals[j] = p.Rivals[i]
+	}
+	n := len(p.Reported)
+	p.Latent, p.Rivals = latent, rivals
+	p.Reported = p.Latent[:n:n]
 }
 
 // rivals draws l distinct competitor ids other than self: from the
