@@ -156,16 +156,34 @@ func (g agreement) meets() bool {
 // (a) a whole refit of N = 300 products and (b) a single product's refit,
 // against re-running the batch sampler from scratch until it reaches the
 // same agreement with a 20,000-sweep reference (in two of three runs).
-// Run it once:
+// Two kinds of refit:
+//
+//   - redraw: every product's vector is drawn afresh from its segment
+//     (synth's default; the hardest case), with the budget of
+//     TestParticlesAgreeWithBatch (30 refit-end sweeps, 12 kept);
+//   - reestimate: every product's competitors are re-estimated with
+//     log-scale noise of sd 0.1 (synth's Sequence.Drift), with 2
+//     refit-end sweeps, both kept.
+//
+// Each logs whether the particles meet the agreement levels. Run it once:
 //
 //	go test -run XXX -bench RefitVsBatch -benchtime 1x ./sequential/
 func BenchmarkRefitVsBatch(b *testing.B) {
+	b.Run("redraw", func(b *testing.B) { refitVsBatch(b, 0, agreementConfig()) })
+	b.Run("reestimate", func(b *testing.B) {
+		pc := agreementConfig()
+		pc.RefitSweeps, pc.KeepSweeps = 2, 2
+		refitVsBatch(b, 0.1, pc)
+	})
+}
+
+func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 	t := b
 	src := rand.New(rand.NewPCG(41, 42))
 	cfg := synth.Scenario()
 	cfg.Products = 300
 	seq := synth.NewSequence(cfg, 2, 0, src)
-	pc := agreementConfig()
+	seq.Drift = drift
 	pc.Workers = 1
 	ps, err := sequential.NewParticles(pc, 1, 2)
 	if err != nil {
@@ -180,7 +198,9 @@ func BenchmarkRefitVsBatch(b *testing.B) {
 			ps.Settle()
 		}
 	}
-	ps.SettleRefit()
+	// The posterior before the refit is settled as well as the agreement
+	// test settles it, whatever the refit's own budget.
+	ps.SettleFull(30)
 	products = seq.Refit(1)
 	b.ResetTimer()
 	start := time.Now()
@@ -210,7 +230,11 @@ func BenchmarkRefitVsBatch(b *testing.B) {
 			i++
 		}
 		one := products[i]
-		synthRedraw(cfg, &one, src)
+		if drift > 0 {
+			synth.Perturb(&one, drift, src)
+		} else {
+			synth.Redraw(cfg, &one, src)
+		}
 		start = time.Now()
 		if _, err := ps.Replace(one.ID, one.Datum()); err != nil {
 			b.Fatal(err)
@@ -253,5 +277,3 @@ func BenchmarkRefitVsBatch(b *testing.B) {
 	}
 }
 
-// synthRedraw draws a fresh refit of one product from its segment.
-func synthRedraw(cfg synth.Config, p *synth.Product, src *rand.Rand) { synth.Redraw(cfg, p, src) }
