@@ -276,4 +276,3 @@ func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 		b.ReportMetric(batchCPU.Seconds()/singleCPU.Seconds(), "ratio-single")
 	}
 }
-

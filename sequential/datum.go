@@ -121,37 +121,50 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 	}
 	// sum_m log G(z_m) is taken as the log of a running product of the
 	// G factors (each in (0, 1]), folded into logAcc before it could
-	// underflow: one log per datum instead of one per value.
+	// underflow: one log per datum instead of one per value. The
+	// table-driven expFast, expm1Fast and logFast (fastmath.go) are
+	// within about half an ulp of the exact values.
+	//
+	// The values go in blocks of valueBlock, each in two passes: all the
+	// z = exp(t) first, then all the G = 1 - exp(-z). Within a pass the
+	// exponentials are independent, so the processor overlaps them; in
+	// one pass each G would wait for its own z.
+	const valueBlock = 16
 	var sumLx, sumZ, logAcc, lgLast float64
 	prod := 1.0
-	for m, ly := range d.logY {
-		lx := ly - kn.logS
-		t := kn.k * lx
-		z := math.Exp(t)
-		sumLx += lx
-		sumZ += z
-		if t < -30 {
-			lg := t - 0.5*z // see logGFromLogZ
-			logAcc += lg
-			lgLast = lg
-			continue
+	var ts, zs [valueBlock]float64
+	for lo := 0; lo < n; lo += valueBlock {
+		ys := d.logY[lo:min(lo+valueBlock, n)]
+		for i, ly := range ys {
+			lx := ly - kn.logS
+			t := kn.k * lx
+			z := expFast(t)
+			sumLx += lx
+			sumZ += z
+			ts[i], zs[i] = t, z
 		}
-		var g float64
-		if z <= math.Ln2 {
-			g = -math.Expm1(-z)
-		} else {
-			g = 1 - math.Exp(-z)
-		}
-		if m == n-1 {
-			lgLast = math.Log(g)
-		}
-		prod *= g
-		if prod < 1e-280 {
-			logAcc += math.Log(prod)
-			prod = 1
+		for i := range ys {
+			t, z := ts[i], zs[i]
+			if t < -30 {
+				lg := t - 0.5*z // see logGFromLogZ
+				logAcc += lg
+				lgLast = lg
+				continue
+			}
+			// G = 1 - exp(-z) by one expm1, accurate relative to G
+			// both for small z and where G is near 1.
+			g := -expm1Fast(-z)
+			if lo+i == n-1 {
+				lgLast = logFast(g)
+			}
+			prod *= g
+			if prod < 1e-280 {
+				logAcc += logFast(prod)
+				prod = 1
+			}
 		}
 	}
-	sumLG := logAcc + math.Log(prod)
+	sumLG := logAcc + logFast(prod)
 	return d.logFall + float64(n)*kn.lnorm + (kn.k-1)*sumLx - sumZ + (kn.a-1)*sumLG + float64(d.l-n)*kn.a*lgLast
 }
 

@@ -20,16 +20,17 @@ type ExpWeibull struct {
 }
 
 // Log1mExp returns log(1 - exp(-z)) for z > 0 without cancellation
-// (Maechler 2012): log(-expm1(-z)) for z <= ln 2, log1p(-exp(-z)) above.
-// It returns -Inf for z == 0 and NaN for z < 0.
+// (Maechler 2012): log(-expm1(-z)) for z <= ln 2, log1p(-exp(-z)) above,
+// each through the table-driven routines of fastmath.go. It returns -Inf
+// for z == 0 and NaN for z < 0.
 func Log1mExp(z float64) float64 {
 	switch {
 	case z < 0 || math.IsNaN(z):
 		return math.NaN()
 	case z <= math.Ln2:
-		return math.Log(-math.Expm1(-z))
+		return logFast(-expm1Fast(-z))
 	default:
-		return math.Log1p(-math.Exp(-z))
+		return log1pFast(-expFast(-z))
 	}
 }
 
@@ -44,9 +45,9 @@ func logWeibullCDF(logx, k, logs float64) float64 {
 // Log1mExp(0) would give -Inf.
 func logGFromLogZ(t float64) float64 {
 	if t < -30 {
-		return t - 0.5*math.Exp(t)
+		return t - 0.5*expFast(t)
 	}
-	return Log1mExp(math.Exp(t))
+	return Log1mExp(expFast(t))
 }
 
 // LogProb returns the log density at x; -Inf for x <= 0.
