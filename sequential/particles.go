@@ -388,7 +388,7 @@ func (ps *Particles) Add(id string, d Datum) (float64, error) {
 		st.drawAux(nil, src)
 		logZ := st.predictiveTerms(dp)
 		ps.incr[p] = logZ - math.Log(nPrev+st.alpha)
-		st.place(slot, dp, logZ, src)
+		st.place(slot, dp, src)
 		st.n++
 	})
 	ps.n++
@@ -420,7 +420,7 @@ func (ps *Particles) Replace(id string, d Datum) (float64, error) {
 		st.drawAux(nil, src)
 		logZNew := st.predictiveTerms(dp)
 		ps.incr[p] = logZNew - math.Log(nOthers+st.alpha)
-		st.place(slot, dp, logZNew, src)
+		st.place(slot, dp, src)
 	})
 	ps.applyIncrements(rem)
 	ps.slots[slot] = dp
@@ -480,11 +480,11 @@ func (ps *Particles) Remove(id string) error {
 	// reciprocal weights.
 	fwd := make([]float64, len(ps.parts))
 	ps.forEach(func(p int, st *State, src *rand.Rand) {
-		removal := st.aux // keep the removal's auxiliaries for inspection
-		st.aux = nil
+		removal, removalKern := st.aux, st.auxKern // keep the removal's auxiliaries for inspection
+		st.aux, st.auxKern = nil, nil
 		st.drawAux(nil, src)
 		fwd[p] = st.predictiveTerms(old) - math.Log(nOthers+st.alpha)
-		st.aux = removal
+		st.aux, st.auxKern = removal, removalKern
 	})
 	ps.logEvidence = ev - ps.logMeanExp(fwd)
 	return nil

@@ -51,10 +51,15 @@ type State struct {
 	prior  *Prior
 	m      int // auxiliary segments per reassignment (Algorithm 8)
 
-	// scratch for reassign, reused across calls
-	logw []float64
-	cand []uint16
-	aux  []Theta
+	// scratch for reassign, reused across calls: the Algorithm-8 terms
+	// (logw), exp(logw - max) and their sum (prob, probSum), the candidate
+	// segments, and the auxiliary thetas with their kernels.
+	logw    []float64
+	prob    []float64
+	probSum float64
+	cand    []uint16
+	aux     []Theta
+	auxKern []kernel
 }
 
 // newState returns an empty state over data slots (all absent).
@@ -172,31 +177,35 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 	if len(s.aux) > 0 {
 		base := math.Log(s.alpha/float64(len(s.aux))) + d.CountLogPred(0, 0, pa, pb)
 		for j := range s.aux {
-			kn := s.aux[j].kernel()
-			w := base + d.valueLogLik(&kn)
+			w := base + d.valueLogLik(&s.auxKern[j])
 			s.logw = append(s.logw, w)
 			s.cand = append(s.cand, Absent)
 			maxw = math.Max(maxw, w)
 		}
 	}
+	s.prob = s.prob[:0]
 	sum := 0.0
 	for _, w := range s.logw {
-		sum += math.Exp(w - maxw)
+		e := math.Exp(w - maxw)
+		s.prob = append(s.prob, e)
+		sum += e
 	}
+	s.probSum = sum
 	return maxw + math.Log(sum)
 }
 
-// pick draws an index of s.logw with probability proportional to exp.
-func (s *State) pick(logZ float64, src *rand.Rand) int {
-	u := src.Float64()
+// pick draws an index of the terms of the last predictiveTerms call with
+// probability proportional to exp(logw).
+func (s *State) pick(src *rand.Rand) int {
+	u := src.Float64() * s.probSum
 	acc := 0.0
-	for j, w := range s.logw {
-		acc += math.Exp(w - logZ)
+	for j, e := range s.prob {
+		acc += e
 		if u < acc {
 			return j
 		}
 	}
-	return len(s.logw) - 1
+	return len(s.prob) - 1
 }
 
 // drawAux fills s.aux with m thetas from the base measure; when own is
@@ -210,12 +219,17 @@ func (s *State) drawAux(own *Theta, src *rand.Rand) {
 	for len(s.aux) < s.m {
 		s.aux = append(s.aux, s.prior.DrawTheta(src))
 	}
+	s.auxKern = s.auxKern[:0]
+	for _, t := range s.aux {
+		s.auxKern = append(s.auxKern, t.kernel())
+	}
 }
 
-// place draws a segment for slot i (datum d, in no segment) given the
-// current s.logw terms and joins it; auxiliary picks open a new segment.
-func (s *State) place(i int, d *Datum, logZ float64, src *rand.Rand) {
-	j := s.pick(logZ, src)
+// place draws a segment for slot i (datum d, in no segment) from the
+// terms of the last predictiveTerms call, which must have been for d, and
+// joins it; auxiliary picks open a new segment.
+func (s *State) place(i int, d *Datum, src *rand.Rand) {
+	j := s.pick(src)
 	c := s.cand[j]
 	if c == Absent {
 		c = s.newSegment(s.aux[j-(len(s.cand)-len(s.aux))])
@@ -241,7 +255,8 @@ func (s *State) detach(i int, d *Datum, src *rand.Rand) {
 func (s *State) reassign(i int, src *rand.Rand) {
 	d := s.data[i]
 	s.detach(i, d, src)
-	s.place(i, d, s.predictiveTerms(d), src)
+	s.predictiveTerms(d)
+	s.place(i, d, src)
 }
 
 // members returns, for every segment index, the present slots in it.
