@@ -200,7 +200,7 @@ func logBetaRatio(a, b float64, n, l int) float64 {
 		for j := 0; j < l-n; j++ {
 			r *= (b + float64(j)) / (ab + float64(n+j))
 		}
-		return math.Log(r)
+		return logFast(r)
 	}
 	return lbeta(a+float64(n), b+float64(l-n)) - lbeta(a, b)
 }

@@ -169,10 +169,12 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 		if g.size == 0 {
 			continue
 		}
-		w := math.Log(float64(g.size)) + d.valueLogLik(&g.kern) + d.CountLogPred(g.reported, g.considered, pa, pb)
+		w := logFast(float64(g.size)) + d.valueLogLik(&g.kern) + d.CountLogPred(g.reported, g.considered, pa, pb)
 		s.logw = append(s.logw, w)
 		s.cand = append(s.cand, uint16(c))
-		maxw = math.Max(maxw, w)
+		if w > maxw {
+			maxw = w
+		}
 	}
 	if len(s.aux) > 0 {
 		base := math.Log(s.alpha/float64(len(s.aux))) + d.CountLogPred(0, 0, pa, pb)
@@ -180,18 +182,20 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 			w := base + d.valueLogLik(&s.auxKern[j])
 			s.logw = append(s.logw, w)
 			s.cand = append(s.cand, Absent)
-			maxw = math.Max(maxw, w)
+			if w > maxw {
+			maxw = w
+		}
 		}
 	}
 	s.prob = s.prob[:0]
 	sum := 0.0
 	for _, w := range s.logw {
-		e := math.Exp(w - maxw)
+		e := expFast(w - maxw)
 		s.prob = append(s.prob, e)
 		sum += e
 	}
 	s.probSum = sum
-	return maxw + math.Log(sum)
+	return maxw + logFast(sum)
 }
 
 // pick draws an index of the terms of the last predictiveTerms call with
