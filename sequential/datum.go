@@ -99,7 +99,7 @@ type kernel struct {
 }
 
 func (t Theta) kernel() kernel {
-	return kernel{a: math.Exp(t.LogA), k: math.Exp(t.LogK), logS: t.LogS, lnorm: t.LogA + t.LogK - t.LogS}
+	return kernel{a: expFast(t.LogA), k: expFast(t.LogK), logS: t.LogS, lnorm: t.LogA + t.LogK - t.LogS}
 }
 
 // ValueLogLik returns the log density of the datum's values as the top n
@@ -186,13 +186,26 @@ func (d *Datum) CountLogPred(reported, considered int, pa, pb float64) float64 {
 	return d.logChoose + logBetaRatio(pa+float64(reported), pb+float64(considered-reported), len(d.values), d.l)
 }
 
+// sizeCountLogPred returns log(size) + CountLogPred(reported, considered,
+// pa, pb): the CRP-weighted count term of an Algorithm-8 candidate, with
+// one logarithm for both factors.
+func (d *Datum) sizeCountLogPred(size, reported, considered int, pa, pb float64) float64 {
+	return d.logChoose + logBetaRatioTimes(float64(size), pa+float64(reported), pb+float64(considered-reported), len(d.values), d.l)
+}
+
 // logBetaRatio returns log B(a+n, b+L-n) - log B(a, b).
 func logBetaRatio(a, b float64, n, l int) float64 {
+	return logBetaRatioTimes(1, a, b, n, l)
+}
+
+// logBetaRatioTimes returns log(scale) + log B(a+n, b+L-n) - log B(a, b)
+// for scale >= 1.
+func logBetaRatioTimes(scale, a, b float64, n, l int) float64 {
 	if l <= 40 {
 		// Rising factorials as one product: fewer transcendental calls
 		// than six log-gamma evaluations. Each factor lies in (0, 1], and
 		// for L <= 40 the product cannot underflow.
-		r := 1.0
+		r := scale
 		ab := a + b
 		for j := 0; j < n; j++ {
 			r *= (a + float64(j)) / (ab + float64(j))
@@ -202,7 +215,7 @@ func logBetaRatio(a, b float64, n, l int) float64 {
 		}
 		return logFast(r)
 	}
-	return lbeta(a+float64(n), b+float64(l-n)) - lbeta(a, b)
+	return logFast(scale) + (lbeta(a+float64(n), b+float64(l-n)) - lbeta(a, b))
 }
 
 func lbeta(a, b float64) float64 {

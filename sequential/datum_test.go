@@ -257,3 +257,29 @@ func BenchmarkCountLogPred(b *testing.B) {
 		})
 	}
 }
+
+// TestSizeCountLogPred checks the fused candidate term used by the
+// Algorithm-8 placement against its two separate parts, log(size) and
+// CountLogPred, on both sides of the L = 40 switch: a fused term that
+// dropped the size or misplaced it in the product would fail.
+func TestSizeCountLogPred(t *testing.T) {
+	t.Parallel()
+	src := rand.New(rand.NewPCG(19, 23))
+	for i := range 2000 {
+		l := []int{1, 10, 40, 41, 60}[i%5]
+		n := src.IntN(l + 1)
+		y := make([]float64, n)
+		for j := range y {
+			y[j] = 1 - float64(j)/float64(n+1)
+		}
+		d := MustDatum(y, l)
+		size := 1 + src.IntN(5000)
+		considered := size * l
+		reported := src.IntN(considered + 1)
+		got := d.sizeCountLogPred(size, reported, considered, 1.5, 2.5)
+		want := math.Log(float64(size)) + d.CountLogPred(reported, considered, 1.5, 2.5)
+		if math.Abs(got-want) > 1e-12*math.Max(1, math.Abs(want)) {
+			t.Errorf("L %d n %d size %d A %d of %d: fused %.17g, parts %.17g", l, n, size, reported, considered, got, want)
+		}
+	}
+}

@@ -886,7 +886,6 @@ func BenchmarkRefit5000(b *testing.B) {
 				ps.Settle()
 			}
 		}
-		ps.Settle()
 		t0 := time.Now()
 		ps.SettleRefit()
 		end += time.Since(t0)

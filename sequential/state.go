@@ -169,7 +169,7 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 		if g.size == 0 {
 			continue
 		}
-		w := logFast(float64(g.size)) + d.valueLogLik(&g.kern) + d.CountLogPred(g.reported, g.considered, pa, pb)
+		w := d.sizeCountLogPred(g.size, g.reported, g.considered, pa, pb) + d.valueLogLik(&g.kern)
 		s.logw = append(s.logw, w)
 		s.cand = append(s.cand, uint16(c))
 		if w > maxw {
