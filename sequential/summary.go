@@ -520,7 +520,7 @@ func (m MixedNext) Quantile(u float64) float64 {
 	for k, nv := range m.laws {
 		q := nv.Quantile(u)
 		lo, hi = min(lo, q), max(hi, q)
-		start += m.w[k] * math.Log(max(q, math.SmallestNonzeroFloat64))
+		start += m.w[k] * logFast(max(q, math.SmallestNonzeroFloat64))
 	}
 	if u == 1 || hi <= lo {
 		return hi
@@ -531,7 +531,7 @@ func (m MixedNext) Quantile(u float64) float64 {
 	tol := math.Log1p(quantileTol)
 	prevStep := b - a
 	for it := 0; it < 400; it++ {
-		x := math.Exp(t)
+		x := expFast(t)
 		cdf, slope := m.cdfSlope(x, t)
 		f := cdf - u
 		switch {
@@ -570,7 +570,7 @@ func (m MixedNext) cdfSlope(x, lx float64) (cdf, slope float64) {
 			continue
 		}
 		lz := nv.k * (lx - nv.logS)
-		z := math.Exp(lz)
+		z := expFast(lz)
 		var logG, dlogG float64
 		switch {
 		case z < 1e-8:
@@ -578,13 +578,13 @@ func (m MixedNext) cdfSlope(x, lx float64) (cdf, slope float64) {
 			// where z or G underflows; the next terms are below 1e-17.
 			logG, dlogG = lz-z/2, nv.k*(1-z/2)
 		case z <= math.Ln2:
-			em := math.Expm1(-z) // -G
-			logG, dlogG = math.Log(-em), nv.k*z*(1+em)/-em
+			em := expm1Fast(-z) // -G
+			logG, dlogG = logFast(-em), nv.k*z*(1+em)/-em
 		default:
-			surv := math.Exp(-z) // 1 - G
-			logG, dlogG = math.Log1p(-surv), nv.k*z*surv/(1-surv)
+			surv := expFast(-z) // 1 - G
+			logG, dlogG = log1pFast(-surv), nv.k*z*surv/(1-surv)
 		}
-		f := math.Exp(nv.power * (logG - nv.capLogG))
+		f := expFast(nv.power * (logG - nv.capLogG))
 		cdf += w * f
 		slope += w * f * nv.power * dlogG
 	}
