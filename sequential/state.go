@@ -183,8 +183,8 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 			s.logw = append(s.logw, w)
 			s.cand = append(s.cand, Absent)
 			if w > maxw {
-			maxw = w
-		}
+				maxw = w
+			}
 		}
 	}
 	s.prob = s.prob[:0]
