@@ -254,6 +254,7 @@ func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 	// the length counts once two of the three meet the levels; its CPU
 	// is the mean of the three. One lucky run does not set the baseline.
 	var batchCPU time.Duration
+	batchSweeps := 0
 	for sweeps := 250; sweeps <= 16000; sweeps *= 2 {
 		var sum time.Duration
 		met := 0
@@ -269,7 +270,7 @@ func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 			}
 		}
 		if met >= 2 {
-			batchCPU = sum / 3
+			batchCPU, batchSweeps = sum/3, sweeps
 			break
 		}
 	}
@@ -277,6 +278,7 @@ func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 	b.ReportMetric(singleCPU.Seconds(), "single-refit-s")
 	if batchCPU > 0 {
 		b.ReportMetric(batchCPU.Seconds(), "batch-s")
+		b.ReportMetric(float64(batchSweeps), "batch-sweeps")
 		b.ReportMetric(batchCPU.Seconds()/refitCPU.Seconds(), "ratio-refit")
 		b.ReportMetric(batchCPU.Seconds()/singleCPU.Seconds(), "ratio-single")
 	}
