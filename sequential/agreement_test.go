@@ -97,6 +97,19 @@ func agreementConfig() sequential.ParticleConfig {
 // the end of a refit) over a first pass of Adds, then over a full second
 // refit of Replaces with 5% of products removed, and compares each stage
 // with a long batch Gibbs run on the same data.
+//
+// It passes with this category (seed 41). It does not pass with every
+// simulated category: in diagnostic runs that changed only the seed of
+// the category (7 to 11), every one met the levels after the adds, but
+// after the refit seed 7 gave a largest co-segment difference of 0.22
+// and seed 10 one of 0.58 with a TV of K of 0.32. For both, two batch
+// references agreed with each other (largest difference 0.04 and 0.05),
+// so the particles are the ones off. With seed 10 the particles, all
+// descended from one ancestor, held an extra segment (P(K = 3) 0.13
+// against 0.46); with seed 7 their K was right and a few products' pairs
+// were off. Single-product moves cannot merge two large segments
+// back within the refit-end sweeps; the open issue on the updater
+// records this.
 func TestParticlesAgreeWithBatch(t *testing.T) {
 	t.Parallel()
 	n, sweeps := 300, 20000
