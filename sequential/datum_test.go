@@ -76,23 +76,9 @@ func TestValueLogLikMatchesExpWeibull(t *testing.T) {
 	for i := range 500 {
 		th := prior.DrawTheta(src)
 		ew := th.EW()
-		l := 1 + src.IntN(60)
-		n := src.IntN(l + 1)
-		y := make([]float64, n)
-		for j := range y {
-			y[j] = 0.01 + 1.5*src.Float64()
-		}
-		sort.Sort(sort.Reverse(sort.Float64Slice(y)))
+		y, l := randomTopValues(src, 60)
 		d := MustDatum(y, l)
-		lgL, _ := math.Lgamma(float64(l + 1))
-		lgLn, _ := math.Lgamma(float64(l - n + 1))
-		want := 0.0
-		if n > 0 {
-			want = lgL - lgLn + float64(l-n)*ew.LogCDF(y[n-1])
-			for _, v := range y {
-				want += ew.LogProb(v)
-			}
-		}
+		want := orderStatLogDensity(ew, y, l)
 		// Same algebra, different grouping of ~3n terms (the kernel sums
 		// log x, z and log G before scaling): 1e-11 relative with a 1e-11
 		// floor covers extreme kernels where the terms reach ~1e4.
@@ -100,6 +86,37 @@ func TestValueLogLikMatchesExpWeibull(t *testing.T) {
 			t.Errorf("case %d: theta %+v, L %d, y %v: ValueLogLik = %.17g, term-by-term %.17g", i, th, l, y, got, want)
 		}
 	}
+}
+
+// randomTopValues draws L in 1..maxL, n in 0..L and n values in
+// [0.01, 1.51), sorted descending.
+func randomTopValues(src *rand.Rand, maxL int) (y []float64, l int) {
+	l = 1 + src.IntN(maxL)
+	y = make([]float64, src.IntN(l+1))
+	for j := range y {
+		y[j] = 0.01 + 1.5*src.Float64()
+	}
+	sort.Sort(sort.Reverse(sort.Float64Slice(y)))
+	return y, l
+}
+
+// orderStatLogDensity is the log density of y as the top n = len(y) order
+// statistics of L iid draws from ew, term by term from ExpWeibull (David
+// and Nagaraja, Order Statistics, 3rd ed., section 2.2):
+//
+//	log(L!/(L-n)!) + sum_m log f(y_m) + (L-n) log F(y_n);  0 for n = 0.
+func orderStatLogDensity(ew ExpWeibull, y []float64, l int) float64 {
+	n := len(y)
+	if n == 0 {
+		return 0
+	}
+	lgL, _ := math.Lgamma(float64(l + 1))
+	lgLn, _ := math.Lgamma(float64(l - n + 1))
+	out := lgL - lgLn + float64(l-n)*ew.LogCDF(y[n-1])
+	for _, v := range y {
+		out += ew.LogProb(v)
+	}
+	return out
 }
 
 // TestCountLogPredNormalised checks that the beta-binomial predictive sums

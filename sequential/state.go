@@ -359,39 +359,6 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 	g.setTheta(t)
 }
 
-// valueSplit splits the datum's value log density (valueLogLik) at the
-// kernel's k and s into the parts that do not and that do depend on a:
-//
-//	valueLogLik = rest + n log a + a g
-//	rest = log(L!/(L-n)!) + n (log k - log s) + (k-1) sum_m log(y_m/s) - sum_m z_m - sum_m log G_m
-//	g    = sum_m log G_m + (L-n) log G_n
-//
-// with z_m = (y_m/s)^k and G_m = 1 - exp(-z_m); logKS = log k - log s.
-// For n = 0 both are 0.
-func (d *Datum) valueSplit(kn *kernel, logKS float64) (rest, g float64) {
-	n := len(d.logY)
-	if n == 0 {
-		return 0, 0
-	}
-	var sumLx, sumZ, sumLG, lg float64
-	for _, ly := range d.logY {
-		lx := ly - kn.logS
-		t := kn.k * lx
-		z := math.Exp(t)
-		sumLx += lx
-		sumZ += z
-		if t < -30 {
-			lg = t - 0.5*z // see logGFromLogZ
-		} else {
-			lg = Log1mExp(z)
-		}
-		sumLG += lg
-	}
-	rest = d.logFall + float64(n)*logKS + (kn.k-1)*sumLx - sumZ - sumLG
-	g = sumLG + float64(d.l-n)*lg
-	return rest, g
-}
-
 // updateAlpha draws alpha given the number of segments K and products N
 // with the auxiliary-variable scheme of Escobar and West (1995) under a
 // Gamma(shape, rate) prior.

@@ -3,7 +3,6 @@ package sequential
 import (
 	"math"
 	"math/rand/v2"
-	"sort"
 	"testing"
 )
 
@@ -20,29 +19,15 @@ func TestValueSplitLinearInA(t *testing.T) {
 	prior.LogA.Sigma, prior.LogK.Sigma = 1.5, 1.5 // reach extreme kernels
 	for i := range 300 {
 		th := prior.DrawTheta(src)
-		l := 1 + src.IntN(40)
-		n := src.IntN(l + 1)
-		y := make([]float64, n)
-		for j := range y {
-			y[j] = 0.01 + 1.5*src.Float64()
-		}
-		sort.Sort(sort.Reverse(sort.Float64Slice(y)))
+		y, l := randomTopValues(src, 40)
+		n := len(y)
 		d := MustDatum(y, l)
 		kn := th.kernel()
 		rest, g := d.valueSplit(&kn, th.LogK-th.LogS)
 		for _, la := range []float64{th.LogA, th.LogA - 0.7, th.LogA + 0.4} {
 			at := th
 			at.LogA = la
-			ew := at.EW()
-			lgL, _ := math.Lgamma(float64(l + 1))
-			lgLn, _ := math.Lgamma(float64(l - n + 1))
-			want := 0.0
-			if n > 0 {
-				want = lgL - lgLn + float64(l-n)*ew.LogCDF(y[n-1])
-				for _, v := range y {
-					want += ew.LogProb(v)
-				}
-			}
+			want := orderStatLogDensity(at.EW(), y, l)
 			got := rest + float64(n)*la + math.Exp(la)*g
 			if n == 0 {
 				got = rest + g

@@ -1,6 +1,7 @@
 package synth
 
 import (
+	"cmp"
 	"math"
 	"math/rand/v2"
 	"slices"
@@ -35,7 +36,7 @@ func TestPerturbKeepsCompetitors(t *testing.T) {
 		if !slices.Equal(oldReported, oldLatent[:oldN]) {
 			t.Fatalf("%s: Perturb wrote into the previous vector", p.ID)
 		}
-		if !slices.IsSortedFunc(p.Latent, func(a, b float64) int { return -cmpFloat(a, b) }) {
+		if !slices.IsSortedFunc(p.Latent, func(a, b float64) int { return cmp.Compare(b, a) }) {
 			t.Fatalf("%s: latent vector not descending: %v", p.ID, p.Latent)
 		}
 		if !slices.Equal(p.Reported, p.Latent[:oldN]) {
@@ -61,16 +62,6 @@ func TestPerturbKeepsCompetitors(t *testing.T) {
 	if math.Abs(mean) > 0.004 || math.Abs(sdHat-sd) > 0.004 {
 		t.Errorf("log ratios: mean %.4f (want 0), sd %.4f (want %.2f)", mean, sdHat, sd)
 	}
-}
-
-func cmpFloat(a, b float64) int {
-	switch {
-	case a < b:
-		return -1
-	case a > b:
-		return 1
-	}
-	return 0
 }
 
 // TestSequenceDrift checks that a re-estimating sequence keeps non-switching
