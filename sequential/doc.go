@@ -57,17 +57,51 @@
 // cancellation gives the weight (N - 1 + alpha)/Z, with Z computed
 // without the product.
 //
-// Replace (a refit) is a Remove followed by an Add of the new datum, so
-// its weight is Z(others, new)/Z(others, old), and the assignment is drawn
-// afresh. We prefer this to keeping the assignment with weight
-// f(new)/f(old): when a product really moves, f(new)/f(old) is tiny in
-// every particle and the weights collapse, whereas the redraw puts the
-// product where its new datum fits and only the predictive ratio enters.
+// Replace (a refit) has two exact forms, and the updater picks one per
+// Replace from the particles as they stand.
+//
+// Redraw: a Remove followed by an Add of the new datum, so the weight is
+// Z(others, new)/Z(others, old) and the assignment is drawn afresh.
+//
+// Keep: the assignments and kernels stay; the new target differs from the
+// old only in product i's factor, so the weight is the ratio of the two
+// targets at the particle, f(new)/f(old): the value likelihoods under the
+// segment's kernel times the beta-binomial predictives of the two counts
+// given the segment's other members (the CRP factor does not change). No
+// proposal is drawn, so nothing else enters. The settle then reassigns
+// the product, a move that leaves the new posterior invariant.
+//
+// Keeping costs two likelihoods per particle where the redraw costs two
+// Algorithm-8 sums over every segment and 2m auxiliaries. When a product
+// really moves, though, f(new)/f(old) is small in every particle: if it
+// is small in some and not others the ESS collapses, and if the
+// particles agree on the product's segment the weights are small and
+// nearly equal, the ESS stays high and yet the sample holds the product
+// where the new posterior seldom puts it. So a Replace keeps only when
+// both of these hold, and redraws otherwise:
+//
+//   - the ESS after the keep weights is at least KeepESS times the ESS
+//     before;
+//   - the keep weights' weighted mean, an estimate of
+//     p(new | others)/p(old | others), is at least KeepESS times the
+//     redraw's estimate of the same ratio, the weighted mean of
+//     Z(others, new)/Z(others, old) on 32 particles spread evenly over
+//     the indices. The redraw looks at every segment, so the two
+//     estimates part when the product's new datum fits elsewhere.
+//
+// The choice is made from the particles' weights and states, the same
+// way for every particle, as adaptive schemes choose their next
+// tempering step; each particle's weight is exact for the form chosen.
+// With KeepESS 0 every Replace redraws (the behaviour of state encoded
+// before version 3). A weekly re-estimate of the same competitors keeps
+// nearly always; a vector drawn afresh from another segment redraws.
 //
 // The log of the weighted mean of the incremental weights is the log
 // predictive density of the change (for an Add, of the datum given the
 // data already present); it is returned as the datum's surprise, and the
-// running sum estimates the log evidence. A Remove moves the evidence by
+// running sum estimates the log evidence. A Replace that keeps returns
+// instead log p(new | others), from the redraw's two sums on the 32
+// particles, so that the surprise means the same whichever form ran. A Remove moves the evidence by
 // the forward predictive of the removed datum given the others (estimated
 // after the removal's moves) rather than by its reciprocal weights, whose
 // tails are heavy. For a product unlike any segment both estimates rest on

@@ -9,14 +9,15 @@ import (
 )
 
 // encodingVersion is the first byte of every encoded particle system.
-// Version 2 layout (little-endian; strings and byte blobs length-prefixed
+// Version 3 layout (little-endian; strings and byte blobs length-prefixed
 // with a uvarint; counts are uvarints, floats are IEEE-754 bits):
 //
 //	version byte
 //	resampled-since-the-last-settle byte (0 or 1; absent in version 1,
 //	  which DecodeParticles still reads, taking it as 0)
 //	config: aux, particles, ess fraction, resampler, sweeps, random share, refit sweeps,
-//	  keep sweeps
+//	  keep sweeps, keep ess (absent before version 3, read as 0: every
+//	  Replace redraws, as those versions did)
 //	prior: count a, count b, (mu, sigma) of log a, log k, log s, alpha shape, alpha rate
 //	master generator (PCG MarshalBinary blob), log evidence
 //	slots: count, then per slot a presence byte and, if present, id, L, n, n values
@@ -27,7 +28,7 @@ import (
 //	  reported, considered, then its free-segment list
 //	kept-draws flag byte; if 1, per particle a count and per kept draw its
 //	  log weight, alpha, segment count and thetas, label count and labels
-const encodingVersion = 2
+const encodingVersion = 3
 
 // ErrEncoding reports a particle-system encoding that cannot be decoded.
 var ErrEncoding = errors.New("sequential: bad particle-system encoding")
@@ -63,6 +64,7 @@ func (ps *Particles) Encode() []byte {
 	e.f(c.RandomShare)
 	e.i(c.RefitSweeps)
 	e.i(c.KeepSweeps)
+	e.f(c.KeepESS)
 	pr := ps.prior
 	for _, v := range []float64{pr.CountA, pr.CountB, pr.LogA.Mu, pr.LogA.Sigma, pr.LogK.Mu, pr.LogK.Sigma,
 		pr.LogS.Mu, pr.LogS.Sigma, pr.AlphaShape, pr.AlphaRate} {
@@ -230,8 +232,8 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if len(b) == 0 {
 		return nil, fmt.Errorf("%w: empty", ErrEncoding)
 	}
-	if b[0] != 1 && b[0] != encodingVersion {
-		return nil, fmt.Errorf("%w: version %d, want 1 or %d", ErrEncoding, b[0], encodingVersion)
+	if b[0] < 1 || b[0] > encodingVersion {
+		return nil, fmt.Errorf("%w: version %d, want 1 to %d", ErrEncoding, b[0], encodingVersion)
 	}
 	d := &decoder{b: b[1:]}
 	resampledSince := false
@@ -252,6 +254,9 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	c.RandomShare = d.f("random share")
 	c.RefitSweeps = d.i("refit sweeps", big)
 	c.KeepSweeps = d.i("keep sweeps", big)
+	if b[0] >= 3 {
+		c.KeepESS = d.f("keep ess")
+	}
 	c.Workers = workers
 	pr := &c.Prior
 	for _, p := range []*float64{&pr.CountA, &pr.CountB, &pr.LogA.Mu, &pr.LogA.Sigma, &pr.LogK.Mu, &pr.LogK.Sigma,

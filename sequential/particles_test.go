@@ -8,6 +8,7 @@ package sequential_test
 
 import (
 	"bytes"
+	"encoding/binary"
 	"errors"
 	"fmt"
 	"math"
@@ -431,20 +432,45 @@ func runScript(t *testing.T, s *script, cfg sequential.ParticleConfig) []byte {
 // TestDeterminism checks the reproducibility contract of model section 4:
 // the same seed and the same operations give the same bytes, whether run
 // twice, interrupted by Encode and DecodeParticles at any of several
-// points, or run over one or two workers; for both resamplers.
+// points, or run over one or two workers; for both resamplers, and with
+// Replaces that keep assignments.
 func TestDeterminism(t *testing.T) {
 	t.Parallel()
 	s := newScript()
-	for _, r := range []sequential.Resampler{sequential.Systematic, sequential.Residual} {
-		t.Run(r.String(), func(t *testing.T) {
-			want := runScript(t, s, scriptConfig(1, r))
-			if two := runScript(t, s, scriptConfig(2, r)); !bytes.Equal(two, want) {
+	for _, tc := range []struct {
+		name    string
+		r       sequential.Resampler
+		keepESS float64
+	}{
+		{"systematic", sequential.Systematic, 0},
+		{"residual", sequential.Residual, 0},
+		{"systematic-keeping", sequential.Systematic, 0.5},
+	} {
+		r := tc.r
+		config := func(workers int) sequential.ParticleConfig {
+			c := scriptConfig(workers, r)
+			c.KeepESS = tc.keepESS
+			return c
+		}
+		t.Run(tc.name, func(t *testing.T) {
+			want := runScript(t, s, config(1))
+			if two := runScript(t, s, config(2)); !bytes.Equal(two, want) {
 				t.Errorf("Workers 2 gives an encoding different from Workers 1")
 			}
-			if testing.Short() && r != sequential.Systematic {
-				return // -short: the repeat and the interruptions for one scheme only
+			if tc.keepESS > 0 {
+				ps, err := sequential.NewParticles(config(2), 12, 34)
+				if err != nil {
+					t.Fatal(err)
+				}
+				s.run(t, ps, 0, len(s.steps))
+				if kept, redrawn := ps.ReplaceForms(); kept == 0 || redrawn == 0 {
+					t.Fatalf("%d Replaces kept, %d redrew: the script should exercise both forms", kept, redrawn)
+				}
 			}
-			if again := runScript(t, s, scriptConfig(1, r)); !bytes.Equal(again, want) {
+			if testing.Short() && tc.name != "systematic" {
+				return // -short: the repeat and the interruptions for one case only
+			}
+			if again := runScript(t, s, config(1)); !bytes.Equal(again, want) {
 				t.Errorf("same seed, same operations: encodings differ")
 			}
 			cuts := []int{0, 9, 25, 27, 31, len(s.steps)}
@@ -452,7 +478,7 @@ func TestDeterminism(t *testing.T) {
 				cuts = []int{27}
 			}
 			for _, cut := range cuts {
-				ps, err := sequential.NewParticles(scriptConfig(1, r), 12, 34)
+				ps, err := sequential.NewParticles(config(1), 12, 34)
 				if err != nil {
 					t.Fatal(err)
 				}
@@ -526,6 +552,7 @@ func smallEncoding(t testing.TB) []byte {
 	cfg := sequential.DefaultParticleConfig()
 	cfg.Particles = 6
 	cfg.ESSFraction = 0.9
+	cfg.KeepESS = 0.5
 	ps, err := sequential.NewParticles(cfg, 3, 4)
 	if err != nil {
 		t.Fatal(err)
@@ -579,7 +606,7 @@ func TestDecodeParticlesErrors(t *testing.T) {
 	if len(panics) > 0 {
 		t.Errorf("%d of %d truncations panicked, at lengths %v", len(panics), len(b), panics)
 	}
-	for _, v := range []byte{0, 3, 255} {
+	for _, v := range []byte{0, 4, 255} {
 		bad := append([]byte{v}, b[1:]...)
 		if _, err, p := decodeRecover(bad); p != nil || !errors.Is(err, sequential.ErrEncoding) {
 			t.Errorf("version byte %d: err = %v, panic %v; want ErrEncoding", v, err, p)
@@ -593,36 +620,78 @@ func TestDecodeParticlesErrors(t *testing.T) {
 	}
 }
 
-// TestDecodeVersion1 reads a version-1 encoding (no resampled-since-
-// settle byte, as state files written before version 2 hold): it must
-// decode as the same system with the flag clear, and a system whose flag
-// is set must keep it through Encode and Decode.
-func TestDecodeVersion1(t *testing.T) {
+// keepESSOffset returns the offset of the keep-ess float in a version-3
+// encoding: after the version and flag bytes, the uvarints aux and
+// particles, the ess fraction, the uvarints resampler and sweeps, the
+// random share, and the uvarints refit sweeps and keep sweeps.
+func keepESSOffset(t *testing.T, b []byte) int {
+	t.Helper()
+	off := 2
+	for _, isFloat := range []bool{false, false, true, false, false, true, false, false} {
+		if isFloat {
+			off += 8
+			continue
+		}
+		_, n := binary.Uvarint(b[off:])
+		if n <= 0 {
+			t.Fatalf("bad uvarint at %d", off)
+		}
+		off += n
+	}
+	return off
+}
+
+// TestDecodeOlderVersions reads encodings of versions 1 and 2 (state files
+// written before version 3 hold no keep-ess setting, before version 2 no
+// resampled-since-settle byte): they must decode as the same system with
+// keep-ess 0, so that every later Replace redraws as those versions did,
+// and with the flag clear for version 1; a system whose flag is set must
+// keep it through Encode and Decode.
+func TestDecodeOlderVersions(t *testing.T) {
 	t.Parallel()
 	b := smallEncoding(t)
-	if b[0] != 2 {
-		t.Fatalf("encoding version %d, want 2", b[0])
+	if b[0] != 3 {
+		t.Fatalf("encoding version %d, want 3", b[0])
 	}
+	off := keepESSOffset(t, b)
+	if got := math.Float64frombits(binary.LittleEndian.Uint64(b[off:])); got != 0.5 {
+		t.Fatalf("keep ess read at offset %d = %v, want smallEncoding's 0.5", off, got)
+	}
+	head, tail := b[2:off], b[off+8:]
+	zero := make([]byte, 8) // keep ess 0
+	join := func(parts ...[]byte) []byte { return bytes.Join(parts, nil) }
 	for _, flag := range []byte{0, 1} {
-		v2 := append([]byte{2, flag}, b[2:]...)
-		ps, err := sequential.DecodeParticles(v2, 1)
+		v3 := join([]byte{3, flag}, head, b[off:off+8], tail)
+		ps, err := sequential.DecodeParticles(v3, 1)
+		if err != nil {
+			t.Fatalf("version 3 with flag %d: %v", flag, err)
+		}
+		if got := ps.Encode(); !bytes.Equal(got, v3) {
+			t.Errorf("version 3, flag %d: re-encoding differs from the input", flag)
+		}
+		v2 := join([]byte{2, flag}, head, tail)
+		ps, err = sequential.DecodeParticles(v2, 1)
 		if err != nil {
 			t.Fatalf("version 2 with flag %d: %v", flag, err)
 		}
-		if got := ps.Encode(); !bytes.Equal(got, v2) {
-			t.Errorf("flag %d: re-encoding differs from the input", flag)
+		if got, want := ps.Encode(), join([]byte{3, flag}, head, zero, tail); !bytes.Equal(got, want) {
+			t.Errorf("version 2, flag %d: did not decode to the same system with keep ess 0", flag)
 		}
 	}
-	v1 := append([]byte{1}, b[2:]...)
+	v1 := join([]byte{1}, head, tail)
 	ps, err := sequential.DecodeParticles(v1, 1)
 	if err != nil {
 		t.Fatalf("version 1: %v", err)
 	}
-	if got, want := ps.Encode(), append([]byte{2, 0}, b[2:]...); !bytes.Equal(got, want) {
-		t.Error("version 1 did not decode to the same system with the flag clear")
+	if got, want := ps.Encode(), join([]byte{3, 0}, head, zero, tail); !bytes.Equal(got, want) {
+		t.Error("version 1 did not decode to the same system with the flag clear and keep ess 0")
 	}
-	if _, err := sequential.DecodeParticles(append([]byte{2, 2}, b[2:]...), 1); !errors.Is(err, sequential.ErrEncoding) {
+	if _, err := sequential.DecodeParticles(join([]byte{3, 2}, head, b[off:off+8], tail), 1); !errors.Is(err, sequential.ErrEncoding) {
 		t.Errorf("flag byte 2: err = %v, want ErrEncoding", err)
+	}
+	bad := join([]byte{3, 0}, head, binary.LittleEndian.AppendUint64(nil, math.Float64bits(1.5)), tail)
+	if _, err := sequential.DecodeParticles(bad, 1); !errors.Is(err, sequential.ErrEncoding) {
+		t.Errorf("keep ess 1.5: err = %v, want ErrEncoding", err)
 	}
 }
 
@@ -731,9 +800,12 @@ func FuzzDecodeParticles(f *testing.F) {
 	})
 }
 
-// benchSystem builds (once per size) a system of P = 256 on n products of
-// the demo scenario and returns its encoding, plus refits: fresh draws of
-// every product, as the next refit of the category would bring.
+// benchSystem builds (once per size and kind of refit) a system of
+// P = 256 on n products of the demo scenario and returns its encoding,
+// plus refits: fresh draws of every product from its segment (drift 0,
+// the hardest case), or re-estimates of every product's competitors with
+// log-scale noise of sd drift (synth.Sequence.Drift), as the next refits
+// of the category would bring.
 type benchSystem struct {
 	encoding []byte
 	ids      []string
@@ -741,11 +813,11 @@ type benchSystem struct {
 	build    time.Duration
 }
 
-var benchSystems sync.Map // n -> *benchSystem
+var benchSystems sync.Map // n/refits/drift -> *benchSystem
 
-func getBenchSystem(b *testing.B, n, refits int) *benchSystem {
+func getBenchSystem(b *testing.B, n, refits int, drift float64) *benchSystem {
 	b.Helper()
-	key := fmt.Sprint(n, "/", refits)
+	key := fmt.Sprint(n, "/", refits, "/", drift)
 	if v, ok := benchSystems.Load(key); ok {
 		return v.(*benchSystem)
 	}
@@ -753,6 +825,7 @@ func getBenchSystem(b *testing.B, n, refits int) *benchSystem {
 	cfg := synth.Scenario()
 	cfg.Products = n
 	seq := synth.NewSequence(cfg, refits+1, 0, rand.New(rand.NewPCG(uint64(n), 5)))
+	seq.Drift = drift
 	bs := &benchSystem{}
 	first := seq.Refit(0)
 	pc := sequential.DefaultParticleConfig()
@@ -813,12 +886,40 @@ func reportFootprint(b *testing.B, ps *sequential.Particles) {
 	b.ReportMetric(float64(kept)/per, "kept-B/particle/product")
 }
 
+// benchDrift is the log-scale noise of the re-estimating refits of the
+// benchmarks (synth.Sequence.Drift).
+const benchDrift = 0.1
+
+// benchDecode decodes the bench system of n products for drift with the
+// given workers and KeepESS.
+func benchDecode(b *testing.B, n int, drift float64, workers int, keepESS float64) (*sequential.Particles, *benchSystem) {
+	bs := getBenchSystem(b, n, 2, drift)
+	ps := bs.decode(b, workers)
+	if err := ps.SetKeepESS(keepESS); err != nil {
+		b.Fatal(err)
+	}
+	return ps, bs
+}
+
+// benchKeepESS is the KeepESS of the "-keeping" sub-benchmarks, which
+// show what keeping assignments saves (the default, 0, always redraws).
+const benchKeepESS = 0.9
+
 // BenchmarkReplace measures one Replace (a refit of one product) on
 // P = 256 particles over 1,000 products with one worker. Settles run every
-// 256 replaces, as the service would, but outside the timer.
+// 256 replaces, as the service would, but outside the timer. This and the
+// next two benchmarks run three cases: refits that redraw every product,
+// refits that re-estimate them (benchDrift), and the re-estimates with
+// KeepESS = benchKeepESS, so that a Replace keeps the assignments when its
+// weights allow.
 func BenchmarkReplace(b *testing.B) {
-	bs := getBenchSystem(b, 1000, 2)
-	ps := bs.decode(b, 1)
+	b.Run("redraw", func(b *testing.B) { benchReplace(b, 0, 0) })
+	b.Run("reestimate", func(b *testing.B) { benchReplace(b, benchDrift, 0) })
+	b.Run("reestimate-keeping", func(b *testing.B) { benchReplace(b, benchDrift, benchKeepESS) })
+}
+
+func benchReplace(b *testing.B, drift, keepESS float64) {
+	ps, bs := benchDecode(b, 1000, drift, 1, keepESS)
 	n := len(bs.ids)
 	lat := make([]time.Duration, 0, b.N)
 	b.ResetTimer()
@@ -847,8 +948,13 @@ func BenchmarkReplace(b *testing.B) {
 // the kernels of the segments they touched, and alpha) every 256 replaces
 // inside the timer.
 func BenchmarkReplaceWithSettle(b *testing.B) {
-	bs := getBenchSystem(b, 1000, 2)
-	ps := bs.decode(b, 1)
+	b.Run("redraw", func(b *testing.B) { benchReplaceWithSettle(b, 0, 0) })
+	b.Run("reestimate", func(b *testing.B) { benchReplaceWithSettle(b, benchDrift, 0) })
+	b.Run("reestimate-keeping", func(b *testing.B) { benchReplaceWithSettle(b, benchDrift, benchKeepESS) })
+}
+
+func benchReplaceWithSettle(b *testing.B, drift, keepESS float64) {
+	ps, bs := benchDecode(b, 1000, drift, 1, keepESS)
 	n := len(bs.ids)
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
@@ -869,9 +975,14 @@ func BenchmarkReplaceWithSettle(b *testing.B) {
 // separately as refit-end-s). It also reports the memory the particle
 // states hold per particle per product after the refit.
 func BenchmarkRefit5000(b *testing.B) {
-	bs := getBenchSystem(b, 5000, 2)
+	b.Run("redraw", func(b *testing.B) { benchRefit5000(b, 0, 0) })
+	b.Run("reestimate", func(b *testing.B) { benchRefit5000(b, benchDrift, 0) })
+	b.Run("reestimate-keeping", func(b *testing.B) { benchRefit5000(b, benchDrift, benchKeepESS) })
+}
+
+func benchRefit5000(b *testing.B, drift, keepESS float64) {
+	ps, bs := benchDecode(b, 5000, drift, 2, keepESS)
 	b.Logf("building the 5,000-product system took %v", bs.build)
-	ps := bs.decode(b, 2)
 	b.ResetTimer()
 	var end time.Duration
 	for i := 0; i < b.N; i++ {

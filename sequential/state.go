@@ -254,6 +254,53 @@ func (s *State) detach(i int, d *Datum, src *rand.Rand) {
 	}
 }
 
+// keepLogRatio returns log f(new)/f(old) for slot i, which holds datum
+// old, under its current segment: the value likelihoods under the
+// segment's kernel and the beta-binomial predictives of the two counts
+// given the segment's other members. It is the exact ratio of the targets
+// with new and with old in place when the assignment is kept (the CRP
+// sizes do not change). The state is not changed.
+func (s *State) keepLogRatio(i int, old, new *Datum) float64 {
+	g := &s.segs[s.label(i)]
+	r, n := g.reported-old.N(), g.considered-old.L()
+	pa, pb := s.prior.CountA, s.prior.CountB
+	return new.CountLogPred(r, n, pa, pb) - old.CountLogPred(r, n, pa, pb) +
+		new.valueLogLik(&g.kern) - old.valueLogLik(&g.kern)
+}
+
+// swapDatum replaces slot i's datum old by new in the count totals of its
+// segment, keeping the assignment (the caller updates the shared data).
+func (s *State) swapDatum(i int, old, new *Datum) {
+	g := &s.segs[s.label(i)]
+	g.reported += new.N() - old.N()
+	g.considered += new.L() - old.L()
+}
+
+// replacePredictives returns log Z(others, old) and log Z(others, new) for
+// slot i, which holds datum old: the Algorithm-8 sums of a Replace's
+// redraw, each with its own auxiliaries (the segment's own theta first
+// when i is alone in it), computed as if i had left its segment. The state
+// is left as it was, labels untouched; only the scratch and src change.
+func (s *State) replacePredictives(i int, old, new *Datum, src *rand.Rand) (logZOld, logZNew float64) {
+	g := &s.segs[s.label(i)]
+	g.size--
+	g.reported -= old.N()
+	g.considered -= old.L()
+	if g.size == 0 {
+		t := g.theta
+		s.drawAux(&t, src)
+	} else {
+		s.drawAux(nil, src)
+	}
+	logZOld = s.predictiveTerms(old)
+	s.drawAux(nil, src)
+	logZNew = s.predictiveTerms(new)
+	g.size++
+	g.reported += old.N()
+	g.considered += old.L()
+	return logZOld, logZNew
+}
+
 // reassign is one Algorithm-8 (Neal 2000) update of product i's segment:
 // it leaves the current posterior invariant.
 func (s *State) reassign(i int, src *rand.Rand) {
