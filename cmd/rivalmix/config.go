@@ -66,6 +66,8 @@ type modelSettings struct {
 	Competitors      *int     `yaml:"competitors"`
 	BatchSize        *int     `yaml:"batch_size"`
 	RefitSweeps      *int     `yaml:"refit_sweeps"`
+	KeepESS          *float64 `yaml:"keep_ess"`
+	BatchSweeps      *int     `yaml:"batch_sweeps"`
 	ESSFraction      *float64 `yaml:"ess_fraction"`
 	Resampler        *string  `yaml:"resampler"`
 	Threshold        *float64 `yaml:"threshold"`
@@ -96,6 +98,12 @@ func (s modelSettings) apply(w stream.WorkerConfig) (stream.WorkerConfig, error)
 	}
 	if s.RefitSweeps != nil {
 		w.Particles.RefitSweeps = *s.RefitSweeps
+	}
+	if s.BatchSweeps != nil {
+		w.Particles.Sweeps = *s.BatchSweeps
+	}
+	if s.KeepESS != nil {
+		w.Particles.KeepESS = *s.KeepESS
 	}
 	if s.ESSFraction != nil {
 		w.Particles.ESSFraction = *s.ESSFraction

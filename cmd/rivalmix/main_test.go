@@ -168,7 +168,7 @@ func TestSettingsFile(t *testing.T) {
 	t.Parallel()
 	dir := t.TempDir()
 	good := filepath.Join(dir, "good.yaml")
-	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n"), 0o644)
+	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n    keep_ess: 0.8\n    batch_sweeps: 0\n"), 0o644)
 	f := serviceFlags{configFile: good, particles: 256, batch: 256, fetch: 256, fetchWait: 1, seed: 1, replicas: 1}
 	sc, err := f.serviceConfig()
 	if err != nil {
@@ -176,6 +176,12 @@ func TestSettingsFile(t *testing.T) {
 	}
 	if sc.Worker.Particles.Particles != 64 || sc.PerCategory["cereal"].Alerts.Threshold != 0.3 || sc.PerCategory["cereal"].Particles.Particles != 64 {
 		t.Errorf("settings not applied: %+v", sc.PerCategory["cereal"])
+	}
+	if got, def := sc.PerCategory["cereal"].Particles.KeepESS, sc.Worker.Particles.KeepESS; got != 0.8 || def == 0.8 {
+		t.Errorf("keep_ess: category %v, default %v; want 0.8 for the category only", got, def)
+	}
+	if got, def := sc.PerCategory["cereal"].Particles.Sweeps, sc.Worker.Particles.Sweeps; got != 0 || def == 0 {
+		t.Errorf("batch_sweeps: category %v, default %v; want 0 for the category only", got, def)
 	}
 	bad := filepath.Join(dir, "bad.yaml")
 	os.WriteFile(bad, []byte("defaults:\n  particle: 64\n"), 0o644)
