@@ -23,7 +23,13 @@ import (
 // categories of 1000 products each send two full refits (4000 product
 // vectors and 4 refit-complete messages each, the first adding the
 // products, the second replacing them); a refit is published once the
-// previous one's summaries arrived.
+// previous one's summaries arrived. In the second refit a quarter of each
+// category's products move to another segment and are drawn afresh from
+// it. The others are, in the sub-benchmarks redraw, reestimate and
+// reestimate-light: drawn afresh from their segment (the hardest case);
+// re-estimated with log-scale noise of sd 0.1 (synth.Sequence.Drift), as
+// a weekly refit mostly is; the same with keep_ess 0.9 and batch_sweeps 0.
+// Run it once:
 //
 //	go test -run XXX -bench Ingest -benchtime 1x ./stream/
 //
@@ -42,6 +48,17 @@ import (
 //     message (its last message) to the arrival of its summary event on
 //     the output stream, 4 samples per refit.
 func BenchmarkIngest(b *testing.B) {
+	def := DefaultServiceConfig().Worker.Particles
+	b.Run("redraw", func(b *testing.B) { benchIngest(b, 0, def.KeepESS, def.Sweeps) })
+	b.Run("reestimate", func(b *testing.B) { benchIngest(b, 0.1, def.KeepESS, def.Sweeps) })
+	// The re-estimates with the lightest settings: Replaces keep the
+	// assignments when their weights allow (keep_ess 0.9) and the
+	// micro-batch settles move nothing (batch_sweeps 0); the refit-end
+	// settle is unchanged.
+	b.Run("reestimate-light", func(b *testing.B) { benchIngest(b, 0.1, 0.9, 0) })
+}
+
+func benchIngest(b *testing.B, drift, keepESS float64, sweeps int) {
 	const (
 		categories = 4
 		products   = 1000
@@ -54,7 +71,7 @@ func BenchmarkIngest(b *testing.B) {
 		settleCount                                               uint64
 	)
 	for range b.N {
-		r := runIngest(b, categories, products, refits)
+		r := runIngest(b, categories, products, refits, drift, keepESS, sweeps)
 		totalVectors += float64(categories * products * refits)
 		applySeconds += r.apply.Seconds()
 		ingestSeconds += r.ingest.Seconds()
@@ -123,7 +140,7 @@ func (c *commitLog) first(pos uint64) (time.Time, bool) {
 	return time.Time{}, false
 }
 
-func runIngest(b *testing.B, categories, products, refits int) ingestResult {
+func runIngest(b *testing.B, categories, products, refits int, drift, keepESS float64, sweeps int) ingestResult {
 	b.StopTimer()
 	ctx, cancel := context.WithTimeout(context.Background(), 20*time.Minute)
 	defer cancel()
@@ -144,6 +161,8 @@ func runIngest(b *testing.B, categories, products, refits int) ingestResult {
 	}
 	cfg := DefaultServiceConfig()
 	cfg.QuietPeriod = 0
+	cfg.Worker.Particles.KeepESS = keepESS
+	cfg.Worker.Particles.Sweeps = sweeps
 	cfg.Bus.MaxAckPending = 4 * cfg.FetchSize // as serve sets it
 	ensureStreams(b, ctx, js, cfg)
 
@@ -185,6 +204,7 @@ func runIngest(b *testing.B, categories, products, refits int) ingestResult {
 	var cats []*testCategory
 	for c := range categories {
 		cats = append(cats, newTestCategory(fmt.Sprintf("bench-%d", c+1), products, 10001+c*products, uint64(100+c)))
+		cats[c].seq.Drift = drift
 	}
 	commits := &commitLog{}
 	// applied[k] is when the k-th product vector (1-based) was applied.
