@@ -92,7 +92,8 @@ type ParticleConfig struct {
 // KeepESS is 0 on measurements: in diagnostic runs on simulated
 // categories of 300 products, keeping assignments (KeepESS 0.9) gave the
 // same agreement with a long batch run on re-estimating refits and a
-// worse one on refits that redraw every product, in each of the runs.
+// worse one in 5 of 6 runs on refits that redraw every product
+// (DEVELOPERS.md has the table).
 func DefaultParticleConfig() ParticleConfig {
 	return ParticleConfig{Prior: DefaultPrior(), Aux: 3, Particles: 256, ESSFraction: 0.5,
 		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1, RefitSweeps: 10, KeepSweeps: 4}
