@@ -46,6 +46,7 @@ type Metrics struct {
 	alerts    *prometheus.CounterVec
 	surprise  *prometheus.GaugeVec
 	refits    *prometheus.CounterVec
+	replaces  *prometheus.CounterVec
 	retries   prometheus.Counter
 	gaugeFunc []prometheus.Collector
 }
@@ -102,6 +103,10 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_refits_total",
 			Help: "Refits completed.",
 		}, []string{"category"}),
+		replaces: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_replaces_total",
+			Help: "Product refits applied, by form: kept (each particle kept the product's segment) or redrawn (placed afresh).",
+		}, []string{"form"}),
 		retries: prometheus.NewCounter(prometheus.CounterOpts{
 			Name: "rivalmix_rejected_publish_failures_total",
 			Help: "Failed attempts to publish a rejected input message to the rejected stream (each is retried).",
@@ -110,6 +115,8 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
 	}
+	m.replaces.WithLabelValues("kept")
+	m.replaces.WithLabelValues("redrawn")
 	if outboxPending != nil {
 		m.gaugeFunc = append(m.gaugeFunc, prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 			Name: "rivalmix_outbox_pending",
@@ -124,7 +131,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.retries)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -135,6 +142,15 @@ func (m *Metrics) CountMessages(o Outcome, n int) {
 	if n > 0 {
 		m.messages.WithLabelValues(string(o)).Add(float64(n))
 	}
+}
+
+// CountReplace counts one applied product refit by its form.
+func (m *Metrics) CountReplace(kept bool) {
+	form := "redrawn"
+	if kept {
+		form = "kept"
+	}
+	m.replaces.WithLabelValues(form).Inc()
 }
 
 // CountRejectRetry counts one failed publication of a rejected message.

@@ -26,6 +26,9 @@ func TestMetrics(t *testing.T) {
 	m.ObserveCommit(3 * time.Millisecond)
 	m.CountRejectRetry()
 	m.CountRejectRetry()
+	m.CountReplace(true)
+	m.CountReplace(false)
+	m.CountReplace(false)
 	rep := RefitReport{
 		Category: "cereal", Refit: "2026-W48", ESS: 192, MeanSurprise: 1.25, Changes: 4,
 		Summary: sequential.Summary{Segments: make([]sequential.SegmentSummary, 3)},
@@ -39,7 +42,7 @@ func TestMetrics(t *testing.T) {
 		Summary: rep.Summary}, 256)
 
 	for _, c := range []prometheus.Collector{m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
-		m.moves, m.alerts, m.surprise, m.refits, m.retries, m.gaugeFunc[0], m.gaugeFunc[1]} {
+		m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.gaugeFunc[0], m.gaugeFunc[1]} {
 		problems, err := testutil.CollectAndLint(c)
 		if err != nil {
 			t.Fatalf("CollectAndLint: %v", err)
@@ -81,6 +84,10 @@ rivalmix_surprise_mean{category="cereal"} 1.25
 # HELP rivalmix_refits_total Refits completed.
 # TYPE rivalmix_refits_total counter
 rivalmix_refits_total{category="cereal"} 2
+# HELP rivalmix_replaces_total Product refits applied, by form: kept (each particle kept the product's segment) or redrawn (placed afresh).
+# TYPE rivalmix_replaces_total counter
+rivalmix_replaces_total{form="kept"} 1
+rivalmix_replaces_total{form="redrawn"} 2
 # HELP rivalmix_rejected_publish_failures_total Failed attempts to publish a rejected input message to the rejected stream (each is retried).
 # TYPE rivalmix_rejected_publish_failures_total counter
 rivalmix_rejected_publish_failures_total 2
@@ -94,7 +101,7 @@ rivalmix_consumer_pending 17
 	if err := testutil.GatherAndCompare(reg, strings.NewReader(want),
 		"rivalmix_messages_total", "rivalmix_ess_ratio", "rivalmix_segments", "rivalmix_segment_moves_total",
 		"rivalmix_alerts_total", "rivalmix_surprise_mean", "rivalmix_refits_total",
-		"rivalmix_rejected_publish_failures_total", "rivalmix_outbox_pending", "rivalmix_consumer_pending"); err != nil {
+		"rivalmix_replaces_total", "rivalmix_rejected_publish_failures_total", "rivalmix_outbox_pending", "rivalmix_consumer_pending"); err != nil {
 		t.Error(err)
 	}
 	if n := testutil.CollectAndCount(m.update); n != 1 {

@@ -386,6 +386,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 			continue
 		}
 		t0 := time.Now()
+		kept0, _ := w.Particles().ReplaceForms()
 		outcome, err := w.Apply(m, seq)
 		if err != nil {
 			if err := s.reject(ctx, msg, seq, err); err != nil {
@@ -395,6 +396,10 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		}
 		if s.metrics != nil {
 			s.metrics.ObserveUpdate(time.Since(t0))
+			if outcome == AppliedReplace {
+				kept1, _ := w.Particles().ReplaceForms()
+				s.metrics.CountReplace(kept1 > kept0)
+			}
 		}
 		if err := s.fail("applied"); err != nil {
 			return err

@@ -564,6 +564,11 @@ func TestServiceEndToEnd(t *testing.T) {
 	e, js, cfg := newTestBus(t, ctx)
 	cereal := newTestCategory("breakfast-cereal", 48, 1001, 11)
 	tea := newTestCategory("tea", 24, 3001, 12)
+	// Tea's refits keep assignments when the weights allow, so that both
+	// forms of a refit reach the metrics.
+	teaCfg := cfg.Worker
+	teaCfg.Particles.KeepESS = 0.5
+	cfg.PerCategory = map[string]WorkerConfig{tea.name: teaCfg}
 	publishInput(t, ctx, js, refitMessages(0, cereal, tea))
 	last := publishInput(t, ctx, js, refitMessages(1, cereal, tea))
 
@@ -717,6 +722,14 @@ func TestServiceEndToEnd(t *testing.T) {
 		if got := testutil.ToFloat64(in.svc.metrics.refits.WithLabelValues(c)); got != 2 {
 			t.Errorf("rivalmix_refits_total{category=%s} = %v, want 2", c, got)
 		}
+	}
+	// The second refit replaces every product: cereal's all redraw, and
+	// tea's keep at least once.
+	kept := testutil.ToFloat64(in.svc.metrics.replaces.WithLabelValues("kept"))
+	redrawn := testutil.ToFloat64(in.svc.metrics.replaces.WithLabelValues("redrawn"))
+	if int(kept+redrawn) != cereal.n+tea.n || kept < 1 || int(redrawn) < cereal.n {
+		t.Errorf("rivalmix_replaces_total: kept %v, redrawn %v; want %d in all, at least %d redrawn (cereal) and 1 kept (tea)",
+			kept, redrawn, cereal.n+tea.n, cereal.n)
 	}
 	if err := in.stop(); err != nil {
 		t.Errorf("Run: %v", err)
