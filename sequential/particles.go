@@ -75,8 +75,9 @@ type ParticleConfig struct {
 	// KeepESS chooses between the two exact forms of a Replace (package
 	// doc): the assignment is kept, with weight f(new)/f(old), when that
 	// leaves an effective sample size of at least KeepESS times the one
-	// before; otherwise the product is placed afresh. 0 always places
-	// afresh; in [0, 1].
+	// before and the weights' mean is at least KeepESS times the redraw's
+	// estimate of the same predictive ratio; otherwise the product is
+	// placed afresh. 0 always places afresh; in [0, 1].
 	KeepESS float64
 	// Workers is the number of goroutines over particles; 0 means
 	// GOMAXPROCS. Results do not depend on it.
@@ -417,9 +418,9 @@ func (ps *Particles) Add(id string, d Datum) (float64, error) {
 }
 
 // Replace swaps product id's datum for d (a refit). When keeping every
-// particle's assignment, with incremental weight f(new)/f(old), leaves an
-// effective sample size of at least KeepESS times the current one, it
-// does that; the settle then moves the product. Otherwise, in each
+// particle's assignment, with incremental weight f(new)/f(old), passes
+// the two tests of KeepESS (replaceKeeping), it does that; the settle
+// then moves the product. Otherwise, in each
 // particle the product leaves its segment and is placed again by the
 // Algorithm-8 proposal, with incremental weight Z(others, new) /
 // Z(others, old). It returns the log predictive density of d given the
