@@ -523,22 +523,31 @@ func (ps *Particles) replaceKeeping(slot int, old, dp *Datum) (float64, bool) {
 		return 0, false
 	}
 	lp := logSumExp(num) - logSumExp(den)
-	ps.forEach(func(p int, st *State, _ *rand.Rand) {
+	// A few integer updates per particle: no need for the workers (and
+	// their reseeding) here.
+	for _, st := range ps.parts {
 		st.swapDatum(slot, old, dp)
-	})
+	}
 	ps.applyIncrements(ps.incr)
 	return lp, true
 }
 
-// essAfter returns the effective sample size of the weights logw + incr.
+// essAfter returns the effective sample size of the log weights
+// logw + incr (logw alone when incr is nil).
 func essAfter(logw, incr []float64) float64 {
+	at := func(p int) float64 {
+		if incr == nil {
+			return logw[p]
+		}
+		return logw[p] + incr[p]
+	}
 	m := math.Inf(-1)
 	for p := range logw {
-		m = math.Max(m, logw[p]+incr[p])
+		m = math.Max(m, at(p))
 	}
 	var s, s2 float64
 	for p := range logw {
-		w := math.Exp(logw[p] + incr[p] - m)
+		w := math.Exp(at(p) - m)
 		s += w
 		s2 += w * w
 	}
@@ -620,16 +629,7 @@ func (ps *Particles) Remove(id string) error {
 
 // ESS returns the effective sample size 1 / sum(W^2) of the normalised
 // weights, in [1, P].
-func (ps *Particles) ESS() float64 {
-	mw := maxOf(ps.logw)
-	var s, s2 float64
-	for _, lw := range ps.logw {
-		w := math.Exp(lw - mw)
-		s += w
-		s2 += w * w
-	}
-	return s * s / s2
-}
+func (ps *Particles) ESS() float64 { return essAfter(ps.logw, nil) }
 
 // Diversity returns the number of distinct ancestors among the particles
 // since they were created: path degeneracy shows as a small number.
