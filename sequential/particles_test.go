@@ -975,21 +975,20 @@ func benchReplaceWithSettle(b *testing.B, drift, keepESS float64) {
 // separately as refit-end-s). It also reports the memory the particle
 // states hold per particle per product after the refit.
 func BenchmarkRefit5000(b *testing.B) {
-	b.Run("redraw", func(b *testing.B) { benchRefit5000(b, 0, 0) })
-	b.Run("reestimate", func(b *testing.B) { benchRefit5000(b, benchDrift, 0) })
-	b.Run("reestimate-keeping", func(b *testing.B) { benchRefit5000(b, benchDrift, benchKeepESS) })
+	def := sequential.DefaultParticleConfig().Sweeps
+	b.Run("redraw", func(b *testing.B) { benchRefit5000(b, 0, 0, def) })
+	b.Run("reestimate", func(b *testing.B) { benchRefit5000(b, benchDrift, 0, def) })
+	b.Run("reestimate-keeping", func(b *testing.B) { benchRefit5000(b, benchDrift, benchKeepESS, def) })
 	// The lightest settings: keeping, and no rejuvenation at the
 	// micro-batch settles (the service's batch_sweeps 0).
-	b.Run("reestimate-light", func(b *testing.B) { benchRefit5000(b, benchDrift, -benchKeepESS) })
+	b.Run("reestimate-light", func(b *testing.B) { benchRefit5000(b, benchDrift, benchKeepESS, 0) })
 }
 
-// benchRefit5000 runs the refit; a negative keepESS means its absolute
-// value with no micro-batch rejuvenation sweeps.
-func benchRefit5000(b *testing.B, drift, keepESS float64) {
-	ps, bs := benchDecode(b, 5000, drift, 2, math.Abs(keepESS))
-	if keepESS < 0 {
-		ps.SetRejuvenation(0, sequential.DefaultParticleConfig().RandomShare)
-	}
+// benchRefit5000 runs the refit with the given KeepESS and micro-batch
+// rejuvenation sweeps.
+func benchRefit5000(b *testing.B, drift, keepESS float64, sweeps int) {
+	ps, bs := benchDecode(b, 5000, drift, 2, keepESS)
+	ps.SetRejuvenation(sweeps, sequential.DefaultParticleConfig().RandomShare)
 	b.Logf("building the 5,000-product system took %v", bs.build)
 	b.ResetTimer()
 	var end time.Duration
