@@ -243,7 +243,8 @@ func (g agreement) meets() bool {
 //     TestParticlesAgreeWithBatch (30 refit-end sweeps, 12 kept);
 //   - reestimate: every product's competitors are re-estimated with
 //     log-scale noise of sd 0.1 (synth's Sequence.Drift), with 2
-//     refit-end sweeps, both kept.
+//     refit-end sweeps, both kept;
+//   - reestimate-keeping: the same with keep_ess 0.9.
 //
 // Each logs whether the particles meet the agreement levels. For the
 // reestimate case that depends on the seed: with this one the particles
@@ -258,7 +259,15 @@ func BenchmarkRefitVsBatch(b *testing.B) {
 	b.Run("reestimate", func(b *testing.B) {
 		pc := agreementConfig()
 		pc.RefitSweeps, pc.KeepSweeps = 2, 2
-		refitVsBatch(b, 0.1, pc)
+		refitVsBatch(b, benchDrift, pc)
+	})
+	// The same with Replaces that keep the assignments when the weights
+	// allow (keep_ess 0.9).
+	b.Run("reestimate-keeping", func(b *testing.B) {
+		pc := agreementConfig()
+		pc.RefitSweeps, pc.KeepSweeps = 2, 2
+		pc.KeepESS = benchKeepESS
+		refitVsBatch(b, benchDrift, pc)
 	})
 }
 
@@ -328,6 +337,11 @@ func refitVsBatch(b *testing.B, drift float64, pc sequential.ParticleConfig) {
 		singleCPU += time.Since(start)
 	}
 	singleCPU /= singles
+	// The singles are timed only if they keep the posterior as close to
+	// a long batch run as the whole refit left it.
+	after := ps.Data()
+	gs := compare(t, ps.Draws(), pooledReference(t, after, 20000, 39), after)
+	b.Logf("particles after the %d single refits: %+v, meets targets %v", singles, gs, gs.meets())
 
 	// The batch sampler from scratch, doubling its length until it agrees
 	// with the reference: at each length three runs (seeds 3, 4, 5), and
