@@ -241,6 +241,7 @@ func (g agreement) meets() bool {
 //   - redraw: every product's vector is drawn afresh from its segment
 //     (synth's default; the hardest case), with the budget of
 //     TestParticlesAgreeWithBatch (30 refit-end sweeps, 12 kept);
+//   - redraw-move-all: the same with random_share 1;
 //   - reestimate: every product's competitors are re-estimated with
 //     log-scale noise of sd 0.1 (synth's Sequence.Drift), with 2
 //     refit-end sweeps, both kept;
@@ -256,6 +257,14 @@ func (g agreement) meets() bool {
 //	go test -run XXX -bench RefitVsBatch -benchtime 1x ./sequential/
 func BenchmarkRefitVsBatch(b *testing.B) {
 	b.Run("redraw", func(b *testing.B) { refitVsBatch(b, 0, agreementConfig()) })
+	// The same with every product moved at a settle that follows a
+	// resampling (random_share 1), which keeps streams of single refits
+	// near the batch posterior (DEVELOPERS.md).
+	b.Run("redraw-move-all", func(b *testing.B) {
+		pc := agreementConfig()
+		pc.RandomShare = 1
+		refitVsBatch(b, 0, pc)
+	})
 	b.Run("reestimate", func(b *testing.B) {
 		pc := agreementConfig()
 		pc.RefitSweeps, pc.KeepSweeps = 2, 2

@@ -68,6 +68,7 @@ type modelSettings struct {
 	RefitSweeps      *int     `yaml:"refit_sweeps"`
 	KeepESS          *float64 `yaml:"keep_ess"`
 	BatchSweeps      *int     `yaml:"batch_sweeps"`
+	RandomShare      *float64 `yaml:"random_share"`
 	ESSFraction      *float64 `yaml:"ess_fraction"`
 	Resampler        *string  `yaml:"resampler"`
 	Threshold        *float64 `yaml:"threshold"`
@@ -104,6 +105,9 @@ func (s modelSettings) apply(w stream.WorkerConfig) (stream.WorkerConfig, error)
 	}
 	if s.KeepESS != nil {
 		w.Particles.KeepESS = *s.KeepESS
+	}
+	if s.RandomShare != nil {
+		w.Particles.RandomShare = *s.RandomShare
 	}
 	if s.ESSFraction != nil {
 		w.Particles.ESSFraction = *s.ESSFraction

@@ -168,7 +168,7 @@ func TestSettingsFile(t *testing.T) {
 	t.Parallel()
 	dir := t.TempDir()
 	good := filepath.Join(dir, "good.yaml")
-	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n    keep_ess: 0.8\n    batch_sweeps: 0\n"), 0o644)
+	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n    keep_ess: 0.8\n    batch_sweeps: 0\n    random_share: 1\n"), 0o644)
 	f := serviceFlags{configFile: good, particles: 256, batch: 256, fetch: 256, fetchWait: 1, seed: 1, replicas: 1}
 	sc, err := f.serviceConfig()
 	if err != nil {
@@ -182,6 +182,9 @@ func TestSettingsFile(t *testing.T) {
 	}
 	if got, def := sc.PerCategory["cereal"].Particles.Sweeps, sc.Worker.Particles.Sweeps; got != 0 || def == 0 {
 		t.Errorf("batch_sweeps: category %v, default %v; want 0 for the category only", got, def)
+	}
+	if got, def := sc.PerCategory["cereal"].Particles.RandomShare, sc.Worker.Particles.RandomShare; got != 1 || def == 1 {
+		t.Errorf("random_share: category %v, default %v; want 1 for the category only", got, def)
 	}
 	bad := filepath.Join(dir, "bad.yaml")
 	os.WriteFile(bad, []byte("defaults:\n  particle: 64\n"), 0o644)
