@@ -336,7 +336,16 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 	touched := map[string]bool{}
 	lastSeq := s.position
 	start := time.Now()
-	for _, msg := range msgs {
+	// A refit-complete ends the part of the fetch that is committed
+	// together: its summary and events go out with that commit, and the
+	// rest of the fetch follows in a commit of its own. Several
+	// categories completing in one fetch then publish one after the
+	// other instead of all after the last one's settle.
+	var rest []jetstream.Msg
+	for idx, msg := range msgs {
+		if rest != nil {
+			break
+		}
 		md, err := msg.Metadata()
 		if err != nil {
 			return fmt.Errorf("stream: message metadata: %w", err)
@@ -383,6 +392,9 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 			outbox = append(outbox, evs...)
 			touched[cat] = true
 			acks = append(acks, pendingAck{msg, OutcomeApplied})
+			if idx+1 < len(msgs) {
+				rest = msgs[idx+1:]
+			}
 			continue
 		}
 		t0 := time.Now()
@@ -437,7 +449,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		}
 	}
 	if len(touched) == 0 && lastSeq == s.position && len(acks) == 0 {
-		return nil
+		return s.processRest(ctx, rest, now)
 	}
 	b := state.Batch{Outbox: outbox}
 	if lastSeq > s.position {
@@ -498,8 +510,16 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 	if s.pub != nil && len(outbox) > 0 {
 		s.pub.Notify()
 	}
-	s.lg.Debug("batch committed", "messages", len(msgs), "position", s.position, "events", len(outbox), "took", time.Since(start))
-	return nil
+	s.lg.Debug("batch committed", "messages", len(msgs)-len(rest), "position", s.position, "events", len(outbox), "took", time.Since(start))
+	return s.processRest(ctx, rest, now)
+}
+
+// processRest processes what a refit-complete left of a fetch.
+func (s *Service) processRest(ctx context.Context, rest []jetstream.Msg, now time.Time) error {
+	if len(rest) == 0 {
+		return nil
+	}
+	return s.process(ctx, rest, now)
 }
 
 // meta builds the category's bookkeeping record.

@@ -1317,3 +1317,57 @@ func TestServiceQuietPeriodAfterRestart(t *testing.T) {
 		t.Errorf("Run: %v", err)
 	}
 }
+
+// TestServiceCommitsAtRefitComplete: when one fetch holds two categories'
+// refit-complete messages, each one's effects are committed (and its
+// events released) with the messages before it, not only at the end of
+// the fetch, so the first category's summary does not wait for the
+// second one's settle.
+func TestServiceCommitsAtRefitComplete(t *testing.T) {
+	t.Parallel()
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	e, js, cfg := newTestBus(t, ctx)
+	cfg.FetchSize = 64 // the whole input in one fetch
+	cereal := newTestCategory("breakfast-cereal", 12, 1001, 71)
+	tea := newTestCategory("tea", 10, 3001, 72)
+	msgs := refitMessages(0, cereal, tea)
+	last := publishInput(t, ctx, js, msgs)
+	first := last - uint64(len(msgs)) + 1
+	var completes []uint64
+	for i, m := range msgs {
+		if strings.Contains(string(m.data), `"complete":true`) {
+			completes = append(completes, first+uint64(i))
+		}
+	}
+	if len(completes) != 2 || completes[1] != last {
+		t.Fatalf("refit-complete messages at %v of %d..%d; the test wants the last one last", completes, first, last)
+	}
+
+	var mu sync.Mutex
+	var committed []uint64
+	in := startInstance(t, e.ClientURL(), filepath.Join(t.TempDir(), "state.db"), cfg, newTestLog(t), instanceOptions{manual: true})
+	in.svc.failpoint = func(stage string) error {
+		if stage == "committed" {
+			mu.Lock()
+			committed = append(committed, in.svc.position)
+			mu.Unlock()
+		}
+		return nil
+	}
+	in.start()
+	in.waitFor(ctx, "the last input", func() bool { return in.position() >= last })
+	if err := in.stop(); err != nil {
+		t.Fatal(err)
+	}
+	mu.Lock()
+	defer mu.Unlock()
+	for _, c := range completes {
+		if !slices.Contains(committed, c) {
+			t.Errorf("no commit ended at the refit-complete message %d; commits ended at %v", c, committed)
+		}
+	}
+	if len(committed) < 2 || committed[len(committed)-1] != last {
+		t.Errorf("commits ended at %v, want the last at %d", committed, last)
+	}
+}
