@@ -108,7 +108,8 @@ func (c ServiceConfig) Validate() error {
 
 // Service is the durable streaming worker: it consumes input from
 // JetStream, applies it to per-category workers, commits state, outbox
-// events and the input position in one bbolt transaction per fetch, and
+// events and the input position in one bbolt transaction per fetch (a
+// refit-complete message closes the transaction early), and
 // acks the input only after that commit (architecture.md, durability
 // rules). The state file's input position is authoritative: at start the
 // durable consumer is re-created to deliver from the message after it.
@@ -329,7 +330,8 @@ type pendingAck struct {
 	outcome Outcome
 }
 
-// process applies one fetch, commits it and acks it.
+// process applies one fetch, commits it and acks it; a refit-complete
+// message ends a commit of its own and the rest follows.
 func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Time) error {
 	var acks []pendingAck
 	var outbox []state.OutboxEvent

@@ -53,7 +53,7 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.Uint64Var(&f.seed, "seed", sc.Worker.Seed, "random seed of new categories")
 	fs.IntVar(&f.particles, "particles", sc.Worker.Particles.Particles, "particles per category")
 	fs.IntVar(&f.batch, "batch", sc.Worker.BatchSize, "changed products per micro-batch (a settle after each)")
-	fs.IntVar(&f.fetch, "fetch", sc.FetchSize, "messages per fetch (one commit and ack each)")
+	fs.IntVar(&f.fetch, "fetch", sc.FetchSize, "messages per fetch (committed and acked together; a refit-complete ends a commit early)")
 	fs.DurationVar(&f.fetchWait, "fetch-wait", sc.FetchWait, "longest wait for a fetch to fill")
 	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
 	fs.DurationVar(&f.rejectRetry, "reject-retry", sc.RejectRetry, "how long to retry filing a rejected message on the rejected stream before stopping (nothing is lost: the batch is processed again at restart)")
