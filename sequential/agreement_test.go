@@ -21,18 +21,8 @@ type agreement struct {
 
 func compare(t testing.TB, a, b []sequential.Draw, data []*sequential.Datum) agreement {
 	t.Helper()
-	sa, sb := sequential.SimilarityMatrix(a), sequential.SimilarityMatrix(b)
 	var g agreement
-	pairs := 0
-	for i := range sa {
-		for j := i + 1; j < len(sa); j++ {
-			d := math.Abs(sa[i][j] - sb[i][j])
-			g.simMean += d
-			g.simMax = math.Max(g.simMax, d)
-			pairs++
-		}
-	}
-	g.simMean /= float64(pairs)
+	g.simMean, g.simMax = similarityDiffs(sequential.SimilarityMatrix(a), sequential.SimilarityMatrix(b))
 	opt := sequential.DefaultSummaryOptions()
 	ua, err := sequential.Summarize(a, data, opt)
 	if err != nil {
@@ -121,27 +111,35 @@ func pooledReference(t testing.TB, data []*sequential.Datum, sweeps int, seed ui
 		}
 		pool = append(pool, c...)
 	}
+	sims := make([][][]float64, len(chains))
+	for k, c := range chains {
+		sims[k] = sequential.SimilarityMatrix(c)
+	}
 	spread := 0.0
-	for a := range chains {
-		for b := a + 1; b < len(chains); b++ {
-			spread = math.Max(spread, maxSimilarityDiff(chains[a], chains[b]))
+	for a := range sims {
+		for b := a + 1; b < len(sims); b++ {
+			_, m := similarityDiffs(sims[a], sims[b])
+			spread = math.Max(spread, m)
 		}
 	}
 	t.Logf("reference: %d chains of %d sweeps; largest co-segment difference between two of them %.4f", referenceChains, sweeps, spread)
 	return pool
 }
 
-// maxSimilarityDiff returns the largest absolute difference between the
-// co-segment probabilities of two posteriors over the same products.
-func maxSimilarityDiff(a, b []sequential.Draw) float64 {
-	sa, sb := sequential.SimilarityMatrix(a), sequential.SimilarityMatrix(b)
-	m := 0.0
+// similarityDiffs returns the mean and the largest absolute difference
+// between two co-segment probability matrices over the same products,
+// over the pairs i < j.
+func similarityDiffs(sa, sb [][]float64) (mean, largest float64) {
+	pairs := 0
 	for i := range sa {
 		for j := i + 1; j < len(sa); j++ {
-			m = math.Max(m, math.Abs(sa[i][j]-sb[i][j]))
+			d := math.Abs(sa[i][j] - sb[i][j])
+			mean += d
+			largest = math.Max(largest, d)
+			pairs++
 		}
 	}
-	return m
+	return mean / float64(max(pairs, 1)), largest
 }
 
 // agreementConfig is the particle budget with which the agreement levels

@@ -345,9 +345,6 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 	// other instead of all after the last one's settle.
 	var rest []jetstream.Msg
 	for idx, msg := range msgs {
-		if rest != nil {
-			break
-		}
 		md, err := msg.Metadata()
 		if err != nil {
 			return fmt.Errorf("stream: message metadata: %w", err)
@@ -396,6 +393,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 			acks = append(acks, pendingAck{msg, OutcomeApplied})
 			if idx+1 < len(msgs) {
 				rest = msgs[idx+1:]
+				break
 			}
 			continue
 		}
@@ -451,7 +449,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		}
 	}
 	if len(touched) == 0 && lastSeq == s.position && len(acks) == 0 {
-		return s.processRest(ctx, rest, now)
+		return nil // rest is empty: a refit-complete always leaves an ack
 	}
 	b := state.Batch{Outbox: outbox}
 	if lastSeq > s.position {
@@ -513,15 +511,10 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 		s.pub.Notify()
 	}
 	s.lg.Debug("batch committed", "messages", len(msgs)-len(rest), "position", s.position, "events", len(outbox), "took", time.Since(start))
-	return s.processRest(ctx, rest, now)
-}
-
-// processRest processes what a refit-complete left of a fetch.
-func (s *Service) processRest(ctx context.Context, rest []jetstream.Msg, now time.Time) error {
-	if len(rest) == 0 {
-		return nil
+	if len(rest) > 0 {
+		return s.process(ctx, rest, now)
 	}
-	return s.process(ctx, rest, now)
+	return nil
 }
 
 // meta builds the category's bookkeeping record.
