@@ -129,8 +129,15 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 	// z = exp(t) first, then all the G = 1 - exp(-z). Within a pass the
 	// exponentials are independent, so the processor overlaps them; in
 	// one pass each G would wait for its own z.
+	//
+	// Where t = k log(y/s) < -30, log G = t - z/2 (see logGFromLogZ), and
+	// the value's terms (k-1) log(y/s) + (a-1) log G are summed as
+	// (ak - 1) log(y/s) - (a-1) z/2: for a huge k the two products are
+	// huge and nearly cancel, and summed apart they leave rounding errors
+	// of the size of their magnitude (a kernel with k = e^40 once scored
+	// +131,072 that way instead of about -100).
 	const valueBlock = 16
-	var sumLx, sumZ, logAcc, lgLast float64
+	var sumLx, sumZ, logAcc, lgLast, tinyLx, tinyZ float64
 	prod := 1.0
 	var ts, zs [valueBlock]float64
 	for lo := 0; lo < n; lo += valueBlock {
@@ -139,16 +146,19 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 			lx := ly - kn.logS
 			t := kn.k * lx
 			z := expFast(t)
-			sumLx += lx
 			sumZ += z
+			if t < -30 {
+				tinyLx += lx
+				tinyZ += z
+			} else {
+				sumLx += lx
+			}
 			ts[i], zs[i] = t, z
 		}
 		for i := range ys {
 			t, z := ts[i], zs[i]
 			if t < -30 {
-				lg := t - 0.5*z // see logGFromLogZ
-				logAcc += lg
-				lgLast = lg
+				lgLast = t - 0.5*z
 				continue
 			}
 			// G = 1 - exp(-z) by one expm1, accurate relative to G
@@ -165,7 +175,11 @@ func (d *Datum) valueLogLik(kn *kernel) float64 {
 		}
 	}
 	sumLG := logAcc + logFast(prod)
-	return d.logFall + float64(n)*kn.lnorm + (kn.k-1)*sumLx - sumZ + (kn.a-1)*sumLG + float64(d.l-n)*kn.a*lgLast
+	ll := d.logFall + float64(n)*kn.lnorm + (kn.k-1)*sumLx - sumZ + (kn.a-1)*sumLG + float64(d.l-n)*kn.a*lgLast
+	if tinyLx != 0 {
+		ll += (kn.a*kn.k-1)*tinyLx - (kn.a-1)*0.5*tinyZ
+	}
+	return ll
 }
 
 // valueSplit splits the datum's value log density (valueLogLik) at the
@@ -182,22 +196,26 @@ func (d *Datum) valueSplit(kn *kernel, logKS float64) (rest, g float64) {
 	if n == 0 {
 		return 0, 0
 	}
-	var sumLx, sumZ, sumLG, lg float64
+	// Where t < -30, (k-1) log(y/s) - log G = -log(y/s) + z/2 is summed
+	// in that form (see valueLogLik on the cancellation it avoids).
+	var sumLx, sumZ, sumLG, lg, tiny float64
 	for _, ly := range d.logY {
 		lx := ly - kn.logS
 		t := kn.k * lx
 		z := math.Exp(t)
-		sumLx += lx
 		sumZ += z
 		if t < -30 {
 			lg = t - 0.5*z // see logGFromLogZ
+			tiny += -lx + 0.5*z
 		} else {
 			lg = Log1mExp(z)
+			sumLx += lx
+			sumLG += lg
 		}
-		sumLG += lg
+		g += lg
 	}
-	rest = d.logFall + float64(n)*logKS + (kn.k-1)*sumLx - sumZ - sumLG
-	g = sumLG + float64(d.l-n)*lg
+	rest = d.logFall + float64(n)*logKS + (kn.k-1)*sumLx - sumZ - sumLG + tiny
+	g += float64(d.l-n) * lg
 	return rest, g
 }
 

@@ -15,6 +15,10 @@ type GibbsConfig struct {
 	// Sweeps is the total number of sweeps, Burn of them discarded;
 	// every Thin-th sweep after burn-in is kept as a draw.
 	Sweeps, Burn, Thin int
+	// SplitMerge is the number of split-merge proposals per sweep
+	// (package doc); a fractional part is the chance of one more. >= 0;
+	// 0 turns the move off.
+	SplitMerge float64
 }
 
 // DefaultGibbsConfig returns m = 3 auxiliary segments and 1,500 sweeps,
@@ -22,6 +26,10 @@ type GibbsConfig struct {
 func DefaultGibbsConfig() GibbsConfig {
 	return GibbsConfig{Prior: DefaultPrior(), Aux: 3, Sweeps: 1500, Burn: 500, Thin: 2}
 }
+
+// maxSplitMerge bounds the split-merge proposals per sweep: each costs
+// a few passes over the members of the segments it touches.
+const maxSplitMerge = 1000
 
 // ErrConfig reports an invalid sampler setting.
 var ErrConfig = errors.New("sequential: invalid configuration")
@@ -40,6 +48,8 @@ func (c GibbsConfig) Validate() error {
 		return fmt.Errorf("%w: burn = %d, want 0 <= burn < sweeps (%d)", ErrConfig, c.Burn, c.Sweeps)
 	case c.Thin < 1:
 		return fmt.Errorf("%w: thin = %d, want >= 1", ErrConfig, c.Thin)
+	case !(c.SplitMerge >= 0 && c.SplitMerge <= maxSplitMerge):
+		return fmt.Errorf("%w: split-merge = %v, want 0..%d proposals per sweep", ErrConfig, c.SplitMerge, maxSplitMerge)
 	}
 	return nil
 }
@@ -56,6 +66,7 @@ type Gibbs struct {
 	st    *State
 	mem   [][]int
 	sweep int
+	moves MoveStats
 }
 
 // NewGibbs starts a sampler over data (every datum non-nil) with all
@@ -82,10 +93,12 @@ func NewGibbs(data []*Datum, cfg GibbsConfig, src *rand.Rand) (*Gibbs, error) {
 	return g, nil
 }
 
-// Sweep performs one full scan: every product reassigned once in order,
-// every occupied segment's parameters updated, then alpha.
+// Sweep performs one full scan: the split-merge proposals, every product
+// reassigned once in order, every occupied segment's parameters updated,
+// then alpha.
 func (g *Gibbs) Sweep(src *rand.Rand) {
 	st := g.st
+	g.moves = g.moves.Add(st.splitMergeMoves(g.cfg.SplitMerge, src))
 	for i := range st.data {
 		if st.data[i] != nil {
 			st.reassign(i, src)
@@ -111,6 +124,9 @@ func (g *Gibbs) Draw() Draw {
 
 // NumSegments returns the number of occupied segments now.
 func (g *Gibbs) NumSegments() int { return g.st.numSegments() }
+
+// Moves returns the split-merge proposals and acceptances so far.
+func (g *Gibbs) Moves() MoveStats { return g.moves }
 
 // Alpha returns the current concentration.
 func (g *Gibbs) Alpha() float64 { return g.st.alpha }

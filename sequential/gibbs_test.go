@@ -99,6 +99,25 @@ var gewekeNames = []string{"K", "alpha", "size of product 0's segment", "log a o
 // for autocorrelation with batch means (50 batches).
 func gewekeZ(t *testing.T, sweepPrior, genPrior Prior, nProducts, l, m1, m2 int, seed uint64) []float64 {
 	t.Helper()
+	var mem [][]int
+	return gewekeZWith(t, sweepPrior, genPrior, nProducts, l, m1, m2, seed, func(st *State, src *rand.Rand) {
+		for i := range st.data {
+			st.reassign(i, src)
+		}
+		mem = st.members(mem)
+		for c := range st.segs {
+			if st.segs[c].size > 0 {
+				st.updateTheta(uint16(c), mem[c], src)
+			}
+		}
+		st.updateAlpha(src)
+	})
+}
+
+// gewekeZWith is gewekeZ with the sampler's moves given as step, which
+// must leave the posterior given the data invariant.
+func gewekeZWith(t *testing.T, sweepPrior, genPrior Prior, nProducts, l, m1, m2 int, seed uint64, step func(*State, *rand.Rand)) []float64 {
+	t.Helper()
 	src := rand.New(rand.NewPCG(seed, 7))
 	ns := len(gewekeNames)
 
@@ -114,19 +133,9 @@ func gewekeZ(t *testing.T, sweepPrior, genPrior Prior, nProducts, l, m1, m2 int,
 	st := priorState(&genPrior, nProducts, src)
 	simulateData(st, l, src)
 	st.prior = &sweepPrior
-	var mem [][]int
 	sc := make([][]float64, ns)
 	for r := 0; r < m2; r++ {
-		for i := range st.data {
-			st.reassign(i, src)
-		}
-		mem = st.members(mem)
-		for c := range st.segs {
-			if st.segs[c].size > 0 {
-				st.updateTheta(uint16(c), mem[c], src)
-			}
-		}
-		st.updateAlpha(src)
+		step(st, src)
 		simulateData(st, l, src)
 		for j, v := range gewekeStats(st) {
 			sc[j] = append(sc[j], v)

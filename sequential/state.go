@@ -60,6 +60,11 @@ type State struct {
 	cand    []uint16
 	aux     []Theta
 	auxKern []kernel
+
+	// sm is the split-merge move's scratch; drop leaves one term out of
+	// its ratio (tests only; the zero value keeps every term).
+	sm   smScratch
+	drop ratioTerm
 }
 
 // newState returns an empty state over data slots (all absent).
@@ -83,6 +88,7 @@ func (s *State) clone() *State {
 		alpha:  s.alpha,
 		prior:  s.prior,
 		m:      s.m,
+		drop:   s.drop,
 	}
 	s.labels.refs.Add(1)
 	return c
