@@ -280,7 +280,7 @@ func TestValueLogLikHugeShape(t *testing.T) {
 type bigF struct{ v *big.Float }
 
 func newBigF(prec uint, x float64) *bigF { return &bigF{new(big.Float).SetPrec(prec).SetFloat64(x)} }
-func (b *bigF) add(o *bigF) *bigF      { b.v.Add(b.v, o.v); return b }
-func (b *bigF) mul(o *bigF) *bigF      { b.v.Mul(b.v, o.v); return b }
-func (b *bigF) clone() *bigF           { return &bigF{new(big.Float).Copy(b.v)} }
-func (b *bigF) float() float64         { f, _ := b.v.Float64(); return f }
+func (b *bigF) add(o *bigF) *bigF        { b.v.Add(b.v, o.v); return b }
+func (b *bigF) mul(o *bigF) *bigF        { b.v.Mul(b.v, o.v); return b }
+func (b *bigF) clone() *bigF             { return &bigF{new(big.Float).Copy(b.v)} }
+func (b *bigF) float() float64           { f, _ := b.v.Float64(); return f }
