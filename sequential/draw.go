@@ -18,4 +18,9 @@ type Draw struct {
 	Segments  []Theta
 	// Alpha is the Dirichlet process concentration (> 0).
 	Alpha float64
+	// Soft, when not nil, holds the placement probabilities of the scan
+	// that produced Labels; summaries then average those instead of the
+	// 0/1 labels where that is valid (package doc, "Rao-Blackwellised
+	// summaries").
+	Soft *Soft
 }

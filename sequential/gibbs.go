@@ -19,6 +19,9 @@ type GibbsConfig struct {
 	// (package doc); a fractional part is the chance of one more. >= 0;
 	// 0 turns the move off.
 	SplitMerge float64
+	// RaoBlackwell keeps, with each draw, the placement probabilities of
+	// the scan that produced it (Draw.Soft), for the summaries to average.
+	RaoBlackwell bool
 }
 
 // DefaultGibbsConfig returns m = 3 auxiliary segments and 1,500 sweeps,
@@ -67,6 +70,7 @@ type Gibbs struct {
 	mem   [][]int
 	sweep int
 	moves MoveStats
+	soft  *Soft // the last recorded scan, nil if the last sweep did not record
 }
 
 // NewGibbs starts a sampler over data (every datum non-nil) with all
@@ -96,13 +100,19 @@ func NewGibbs(data []*Datum, cfg GibbsConfig, src *rand.Rand) (*Gibbs, error) {
 // Sweep performs one full scan: the split-merge proposals, every product
 // reassigned once in order, every occupied segment's parameters updated,
 // then alpha.
-func (g *Gibbs) Sweep(src *rand.Rand) {
+func (g *Gibbs) Sweep(src *rand.Rand) { g.sweepOnce(src, false) }
+
+// sweepOnce is Sweep, recording the scan's placement probabilities when
+// record is true (kept for the next Draw).
+func (g *Gibbs) sweepOnce(src *rand.Rand, record bool) {
 	st := g.st
 	g.moves = g.moves.Add(st.splitMergeMoves(g.cfg.SplitMerge, src))
-	for i := range st.data {
-		if st.data[i] != nil {
-			st.reassign(i, src)
-		}
+	g.soft = nil
+	if record {
+		g.soft = &Soft{}
+		st.scan(src, g.soft)
+	} else {
+		st.scan(src, nil)
 	}
 	g.mem = st.members(g.mem)
 	for c := range st.segs {
@@ -115,10 +125,12 @@ func (g *Gibbs) Sweep(src *rand.Rand) {
 }
 
 // Draw returns the current state as an equal-weight draw; the labels are
-// copied, so the draw stays valid after further sweeps.
+// copied, so the draw stays valid after further sweeps. It carries the
+// placement probabilities of the last sweep when Run recorded them.
 func (g *Gibbs) Draw() Draw {
 	d := g.st.draw(0)
 	d.Labels = append([]uint16(nil), d.Labels...)
+	d.Soft = g.soft
 	return d
 }
 
@@ -140,8 +152,9 @@ type Progress func(sweep, total, segments int)
 func (g *Gibbs) Run(src *rand.Rand, progress Progress) []Draw {
 	var out []Draw
 	for s := 1; s <= g.cfg.Sweeps; s++ {
-		g.Sweep(src)
-		if s > g.cfg.Burn && (s-g.cfg.Burn)%g.cfg.Thin == 0 {
+		keep := s > g.cfg.Burn && (s-g.cfg.Burn)%g.cfg.Thin == 0
+		g.sweepOnce(src, keep && g.cfg.RaoBlackwell)
+		if keep {
 			out = append(out, g.Draw())
 		}
 		if progress != nil {

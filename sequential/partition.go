@@ -79,8 +79,11 @@ func checkLabelLengths(draws []Draw) int {
 
 // Similarity returns, for each pair (i, j) of product indices, the
 // posterior probability that products i and j share a segment: the
-// weighted fraction of draws that give them the same label, in [0, 1]
-// (1 when i == j). It costs O(draws x pairs) time and no N x N memory.
+// weighted mean over draws of the same-label indicator, or, for a draw
+// with placement probabilities (Draw.Soft), of the mean of the
+// probabilities with which i's update put i with j and j's update put j
+// with i. In [0, 1] (1 when i == j). It costs O(draws x pairs) time and
+// no N x N memory.
 //
 // It panics if draws is empty, the draws label different numbers of
 // products, an index is out of range, or the weights are invalid (see
@@ -97,6 +100,16 @@ func Similarity(draws []Draw, pairs [][2]int) []float64 {
 	var wsum float64
 	for d, dr := range draws {
 		wsum += w[d]
+		if dr.Soft != nil {
+			if w[d] == 0 {
+				continue
+			}
+			before := dr.Soft.startLabels(dr.Labels)
+			for k, p := range pairs {
+				out[k] += w[d] * softPair(dr, before, p[0], p[1])
+			}
+			continue
+		}
 		for k, p := range pairs {
 			if dr.Labels[p[0]] == dr.Labels[p[1]] {
 				out[k] += w[d]
@@ -113,34 +126,80 @@ func Similarity(draws []Draw, pairs [][2]int) []float64 {
 	return out
 }
 
+// softPair returns a soft draw's co-segment probability of i != j: the
+// mean of P(i's update put i in j's segment) and the converse, j's label
+// at i's update being its label before the scan (before) when j > i and
+// after it otherwise.
+func softPair(dr Draw, before []uint16, i, j int) float64 {
+	at := func(i, j int) uint16 {
+		if j > i {
+			return before[j]
+		}
+		return dr.Labels[j]
+	}
+	return 0.5 * (dr.Soft.placement(i, at(i, j)) + dr.Soft.placement(j, at(j, i)))
+}
+
 // SimilarityMatrix returns the full N x N posterior similarity matrix,
-// [i][j] = P(products i and j share a segment) in [0, 1], symmetric with
-// unit diagonal. It needs N^2 floats of memory and O(draws x N^2) time in
-// the worst case, so it is meant for small categories, tests and
-// displays of a few hundred products; the service uses Similarity,
-// ExpectedBinder and PointPartition, which never build it.
+// [i][j] = P(products i and j share a segment) in [0, 1] as Similarity
+// computes it, symmetric with unit diagonal. It needs N^2 floats of memory
+// and O(draws x N^2) time in the worst case, so it is meant for small
+// categories, tests and displays of a few hundred products; the service
+// uses ExpectedBinder and PointPartition, which never build it.
 //
 // It panics on the same misuse as Similarity.
 func SimilarityMatrix(draws []Draw) [][]float64 {
 	n := checkLabelLengths(draws)
 	w := NormalizedWeights(draws)
-	parts := distinctPartitions(draws, w)
 	flat := make([]float64, n*n)
 	m := make([][]float64, n)
 	for i := range m {
 		m[i] = flat[i*n : (i+1)*n : (i+1)*n]
 	}
 	var wsum float64
-	for _, p := range parts {
-		wsum += p.w
-		if p.w == 0 {
+	var hard []Draw
+	var hardW []float64
+	for d, dr := range draws {
+		wsum += w[d]
+		if dr.Soft == nil {
+			hard = append(hard, dr)
+			hardW = append(hardW, w[d])
 			continue
 		}
-		for c := 0; c < p.k; c++ {
-			mem := p.members(c)
-			for x, i := range mem {
-				for _, j := range mem[x+1:] {
-					m[i][j] += p.w
+		if w[d] == 0 {
+			continue
+		}
+		before := dr.Soft.startLabels(dr.Labels)
+		for i := 0; i < n; i++ {
+			seg, p := dr.Soft.entries(i)
+			for j := 0; j < n; j++ {
+				if j == i {
+					continue
+				}
+				l := dr.Labels[j]
+				if j > i {
+					l = before[j]
+				}
+				for e, x := range seg {
+					if x == l {
+						m[i][j] += 0.5 * w[d] * float64(p[e])
+						break
+					}
+				}
+			}
+		}
+	}
+	if len(hard) > 0 {
+		for _, p := range distinctPartitions(hard, hardW) {
+			if p.w == 0 {
+				continue
+			}
+			for c := 0; c < p.k; c++ {
+				mem := p.members(c)
+				for x, i := range mem {
+					for _, j := range mem[x+1:] {
+						m[i][j] += p.w
+					}
 				}
 			}
 		}
@@ -148,7 +207,7 @@ func SimilarityMatrix(draws []Draw) [][]float64 {
 	for i := range m {
 		m[i][i] = 1
 		for j := i + 1; j < n; j++ {
-			v := math.Min(m[i][j]/wsum, 1)
+			v := math.Min((m[i][j]+m[j][i])/wsum, 1)
 			m[i][j], m[j][i] = v, v
 		}
 	}
@@ -165,7 +224,9 @@ func SimilarityMatrix(draws []Draw) [][]float64 {
 // Each draw contributes sum_k C(n_k,2) + sum_l C(m_l,2) - 2 sum_kl C(n_kl,2)
 // from its contingency table against the candidate (n_k draw segment
 // sizes, m_l candidate segment sizes, n_kl their overlaps), in O(N) time
-// per draw.
+// per draw. Draws with placement probabilities contribute the loss
+// against their co-segment probabilities instead (see Similarity), in
+// O(N K) time per draw.
 //
 // It panics if draws is empty, a draw's labels or partition differ in
 // length, or the weights are invalid (see NormalizedWeights).
@@ -175,6 +236,11 @@ func ExpectedBinder(draws []Draw, partition []int) float64 {
 		panic(fmt.Sprintf("sequential: ExpectedBinder: partition has %d products, draws have %d", len(partition), n))
 	}
 	w := NormalizedWeights(draws)
+	for _, dr := range draws {
+		if dr.Soft != nil {
+			return expectedBinderParts(pairParts(draws, w, nil), partition)
+		}
+	}
 	z, k := compactInts(partition)
 	order, start := groupBySegment(z, k)
 	candPairs := pairsWithin(start)
@@ -216,8 +282,9 @@ func PointPartition(draws []Draw, maxSweeps int) ([]int, float64) {
 	}
 	w := NormalizedWeights(draws)
 	parts := distinctPartitions(draws, w)
-	part := pointPartition(parts, maxSweeps)
-	return part, expectedBinderParts(parts, part)
+	pairs := pairParts(draws, w, parts)
+	part := pointPartition(parts, pairs, maxSweeps)
+	return part, expectedBinderParts(pairs, part)
 }
 
 // AdjustedRand returns the adjusted Rand index of Hubert and Arabie
@@ -343,6 +410,95 @@ type drawPartition struct {
 	start []int32
 	pairs int64   // sum_c C(n_c, 2)
 	w     float64 // total normalised weight of the merged draws
+	// soft, for a draw that carries placement probabilities, holds them
+	// in the compact labels of z; such draws are never merged.
+	soft *softPart
+}
+
+// softPart is a draw's Soft in the compact labels of its drawPartition:
+// product i's entries are seg[off[i]:off[i+1]] with probabilities p, and
+// movers lists the products the scan moved (ascending), with their
+// compact labels before (from) and after (to) the scan. Labels that occur
+// only before the scan, or only among the placement candidates, have
+// compact numbers k0..k-1 beyond those of z and no members.
+type softPart struct {
+	off    []int32
+	seg    []int32
+	p      []float64
+	movers []softMover
+}
+
+type softMover struct{ i, from, to int32 }
+
+// softPartition builds the unmerged drawPartition of a draw with Soft.
+func softPartition(dr Draw, w float64) *drawPartition {
+	n := len(dr.Labels)
+	rename := make([]int32, len(dr.Segments))
+	for i := range rename {
+		rename[i] = -1
+	}
+	k := int32(0)
+	name := func(l uint16) int32 {
+		if rename[l] < 0 {
+			rename[l] = k
+			k++
+		}
+		return rename[l]
+	}
+	z := make([]int32, n)
+	for i, l := range dr.Labels {
+		z[i] = name(l)
+	}
+	k0 := int(k)
+	sp := &softPart{off: make([]int32, n+1)}
+	for i := 0; i < n; i++ {
+		seg, p := dr.Soft.entries(i)
+		for e, l := range seg {
+			sp.seg = append(sp.seg, name(l))
+			sp.p = append(sp.p, float64(p[e]))
+		}
+		sp.off[i+1] = int32(len(sp.seg))
+	}
+	for _, m := range dr.Soft.Movers {
+		sp.movers = append(sp.movers, softMover{i: int32(m.Product), from: name(m.From), to: z[m.Product]})
+	}
+	order, start := groupBySegment(z, int(k))
+	return &drawPartition{z: z, k: int(k), order: order, start: start, pairs: pairsWithin(start[:k0+1]), w: w, soft: sp}
+}
+
+// pairParts returns the partitions the pair probabilities are read from:
+// the merged partitions when no draw carries placement probabilities,
+// otherwise one part per draw, soft where the draw has a Soft.
+func pairParts(draws []Draw, w []float64, merged []*drawPartition) []*drawPartition {
+	soft := false
+	for _, dr := range draws {
+		soft = soft || dr.Soft != nil
+	}
+	if !soft {
+		return merged
+	}
+	out := make([]*drawPartition, 0, len(draws))
+	for d, dr := range draws {
+		if w[d] == 0 {
+			continue
+		}
+		if dr.Soft != nil {
+			out = append(out, softPartition(dr, w[d]))
+		} else {
+			out = append(out, distinctPartitions(draws[d:d+1], w[d:d+1])...)
+		}
+	}
+	return out
+}
+
+// hasSoft reports whether any part carries placement probabilities.
+func hasSoft(parts []*drawPartition) bool {
+	for _, p := range parts {
+		if p.soft != nil {
+			return true
+		}
+	}
+	return false
 }
 
 func (p *drawPartition) members(c int) []int32 { return p.order[p.start[c]:p.start[c+1]] }
@@ -414,11 +570,34 @@ func hashLabels(z []int32) uint64 {
 	return h
 }
 
-// expectedBinderParts is ExpectedBinder over merged partitions.
+// expectedBinderParts is ExpectedBinder over the parts of pairParts.
+// With placement probabilities the co-segment probability of i and j in a
+// draw is the mean of the probability that i's update put i with j and
+// the same for j, and the loss is
+//
+//	candPairs + sum_(i<j) pi_ij - 2 sum_(i<j, same candidate segment) pi_ij
+//	  = candPairs + (1/2) sum_i [sum_l q_i(l) - 2 q_i(own)]
+//
+// with q_i(l) the summed probabilities of i with the members of candidate
+// segment l (affinity), each pair counted from both ends.
 func expectedBinderParts(parts []*drawPartition, partition []int) float64 {
 	z, k := compactInts(partition)
 	order, start := groupBySegment(z, k)
 	candPairs := pairsWithin(start)
+	if hasSoft(parts) {
+		s := newBinderSearch(parts, z, k)
+		var acc float64
+		s.beginScan()
+		for i := range z {
+			s.enter(i)
+			s.affinity(i)
+			for _, a := range s.aff {
+				acc += 0.5 * a
+			}
+			acc -= s.aff[z[i]]
+		}
+		return float64(candPairs) + acc/s.wsum
+	}
 	cnt := make([]int32, len(partition)+1)
 	var loss, wsum float64
 	for _, p := range parts {
@@ -432,11 +611,12 @@ func expectedBinderParts(parts []*drawPartition, partition []int) float64 {
 	return loss / wsum
 }
 
-// pointPartition runs the search of PointPartition and returns the
-// partition in canonical numbering.
-func pointPartition(parts []*drawPartition, maxSweeps int) []int {
-	best := bestDrawPartition(parts)
-	s := newBinderSearch(parts, slices.Clone(parts[best].z), parts[best].k)
+// pointPartition runs the search of PointPartition, from the best of the
+// merged partitions and over the pair probabilities of pairs (pairParts),
+// and returns the partition in canonical numbering.
+func pointPartition(merged, pairs []*drawPartition, maxSweeps int) []int {
+	best := bestDrawPartition(merged)
+	s := newBinderSearch(pairs, slices.Clone(merged[best].z), merged[best].k)
 	s.improve(maxSweeps)
 	return canonicalPartition(s.z)
 }
@@ -559,7 +739,15 @@ type binderSearch struct {
 	free   []int32
 	rowOff []int // rows of parts[v] begin at rowOff[v]
 	rows   [][]cell
-	aff    []float64 // scratch: aff[l] = sum_v w_v n^v_{z_v(i), l}
+	aff    []float64 // scratch: see affinity
+
+	// For parts with placement probabilities, drows (laid out as rows)
+	// hold the corrections that turn the labels after the scan into the
+	// labels at product i's update: +1 at (label before, slot) and -1 at
+	// (label after, slot) for each mover not yet passed (product > i).
+	// cursor[v] is the next mover of part v to pass. See beginScan.
+	drows  [][]cell
+	cursor []int
 }
 
 func newBinderSearch(all []*drawPartition, z []int32, k int) *binderSearch {
@@ -578,6 +766,10 @@ func newBinderSearch(all []*drawPartition, z []int32, k int) *binderSearch {
 		s.rowOff[v+1] = s.rowOff[v] + p.k
 	}
 	s.rows = make([][]cell, s.rowOff[len(s.parts)])
+	if hasSoft(s.parts) {
+		s.drows = make([][]cell, len(s.rows))
+		s.cursor = make([]int, len(s.parts))
+	}
 	dense := make([]int32, k)
 	var touched []int32
 	for v, p := range s.parts {
@@ -601,16 +793,98 @@ func newBinderSearch(all []*drawPartition, z []int32, k int) *binderSearch {
 	return s
 }
 
-// affinity fills s.aff for product i: aff[l]/wsum is the sum over members
-// j of slot l of P(i and j share a segment), counting i itself once if
-// it is in l.
+// affinity fills s.aff for product i: aff[l]/wsum is the sum over the
+// members j != i of slot l of P(i and j share a segment). For a part with
+// placement probabilities that is sum_k p_i(k) times the number of
+// products in slot l whose label was k at i's update (rows plus the
+// mover corrections, so enter(i) must have been called); for the others,
+// the members of i's own segment. i itself is taken out.
 func (s *binderSearch) affinity(i int) {
 	clear(s.aff)
 	for v, p := range s.parts {
-		for _, c := range s.rows[s.rowOff[v]+int(p.z[i])] {
-			s.aff[c.seg] += p.w * float64(c.count)
+		if p.soft == nil {
+			for _, c := range s.rows[s.rowOff[v]+int(p.z[i])] {
+				s.aff[c.seg] += p.w * float64(c.count)
+			}
+			s.aff[s.z[i]] -= p.w
+			continue
+		}
+		sp := p.soft
+		for e := sp.off[i]; e < sp.off[i+1]; e++ {
+			k, wp := int(sp.seg[e]), p.w*sp.p[e]
+			for _, c := range s.rows[s.rowOff[v]+k] {
+				s.aff[c.seg] += wp * float64(c.count)
+			}
+			for _, c := range s.drows[s.rowOff[v]+k] {
+				s.aff[c.seg] += wp * float64(c.count)
+			}
+			if int32(k) == p.z[i] {
+				s.aff[s.z[i]] -= wp
+			}
 		}
 	}
+}
+
+// beginScan starts a pass over the products in ascending order: every
+// mover's correction is put in place (each has not been passed yet).
+func (s *binderSearch) beginScan() {
+	if s.drows == nil {
+		return
+	}
+	for v, p := range s.parts {
+		if p.soft == nil {
+			continue
+		}
+		for c := 0; c < p.k; c++ {
+			s.drows[s.rowOff[v]+c] = s.drows[s.rowOff[v]+c][:0]
+		}
+		for _, m := range p.soft.movers {
+			s.moverCorrection(v, m, 1)
+		}
+		s.cursor[v] = 0
+	}
+}
+
+// enter passes product i (ascending, after beginScan): from i's update
+// on, its own label is the one after the scan.
+func (s *binderSearch) enter(i int) {
+	if s.drows == nil {
+		return
+	}
+	for v, p := range s.parts {
+		if p.soft == nil {
+			continue
+		}
+		mv := p.soft.movers
+		for s.cursor[v] < len(mv) && int(mv[s.cursor[v]].i) <= i {
+			s.moverCorrection(v, mv[s.cursor[v]], -1)
+			s.cursor[v]++
+		}
+	}
+}
+
+// moverCorrection adds sign times mover m's correction to part v's drows.
+func (s *binderSearch) moverCorrection(v int, m softMover, sign int32) {
+	l := s.z[m.i]
+	cellAdd(&s.drows[s.rowOff[v]+int(m.from)], l, sign)
+	cellAdd(&s.drows[s.rowOff[v]+int(m.to)], l, -sign)
+}
+
+// cellAdd adds delta to the cell of seg in row, dropping cells that reach
+// zero; counts may be negative.
+func cellAdd(row *[]cell, seg, delta int32) {
+	r := *row
+	for x := range r {
+		if r[x].seg == seg {
+			r[x].count += delta
+			if r[x].count == 0 {
+				r[x] = r[len(r)-1]
+				*row = r[:len(r)-1]
+			}
+			return
+		}
+	}
+	*row = append(r, cell{seg: seg, count: delta})
 }
 
 // improve sweeps the products until no single move lowers the expected
@@ -618,7 +892,9 @@ func (s *binderSearch) affinity(i int) {
 func (s *binderSearch) improve(maxSweeps int) {
 	for sweep := 0; sweep < maxSweeps; sweep++ {
 		moved := false
+		s.beginScan()
 		for i := range s.z {
+			s.enter(i)
 			if s.tryMove(i) {
 				moved = true
 			}
@@ -633,12 +909,14 @@ func (s *binderSearch) improve(maxSweeps int) {
 // expected loss most, if any does by more than rounding could explain.
 // With q_l = sum_{j in l, j != i} P(i ~ j), moving i from slot f to slot
 // l changes the loss by (m_l - (m_f - 1)) - 2 (q_l - q_f): each pair
-// gained costs 1 - 2P and each pair lost saves it.
+// gained costs 1 - 2P and each pair lost saves it. With placement
+// probabilities, P(i ~ j) is read from i's own update only (the
+// affinity); the loss reported at the end counts both ends of each pair.
 func (s *binderSearch) tryMove(i int) bool {
 	from := s.z[i]
 	s.affinity(i)
 	mFrom := float64(s.size[from])
-	qFrom := s.aff[from]/s.wsum - 1
+	qFrom := s.aff[from] / s.wsum
 	const newSlot = -2
 	best, bestDelta := int32(-1), 0.0
 	for l, m := range s.size {

@@ -30,10 +30,11 @@ func (m MoveStats) Add(o MoveStats) MoveStats {
 		m.MergesProposed + o.MergesProposed, m.MergesAccepted + o.MergesAccepted}
 }
 
-// provisionalSteps is the number of Newton steps of the provisional
-// kernel fits that guide the allocation; they are refitted each time a
-// part doubles, starting from the previous fit.
-const provisionalSteps = 3
+// provisionalSteps is the number of Newton steps of each provisional
+// kernel fit that guides the allocation (after the anchors' first fits,
+// which take up to newtonSteps from the prior mean): refits start from
+// the previous fit each time a part doubles, up to fitSubset members.
+const provisionalSteps = 1
 
 // smScratch holds the split-merge move's working lists.
 type smScratch struct {
@@ -103,8 +104,11 @@ func (s *State) allocate(i, j int, inPart1 func(int) bool, src *rand.Rand) (logP
 		refitAt   int
 	}
 	fit := func(p *part) {
-		kp := fitKernel(pr, data, *p.mem, p.th, provisionalSteps)
-		p.th = Theta{kp.mu[0], kp.mu[1], kp.mu[2]}
+		steps := provisionalSteps
+		if p.refitAt == 1 {
+			steps = newtonSteps
+		}
+		p.th = provisionalKernel(pr, data, *p.mem, p.th, steps)
 		p.kern = p.th.kernel()
 		p.refitAt *= 2
 	}
@@ -141,7 +145,7 @@ func (s *State) allocate(i, j int, inPart1 func(int) bool, src *rand.Rand) (logP
 		*p.mem = append(*p.mem, k)
 		p.rep += d.N()
 		p.cons += d.L()
-		if len(*p.mem) >= 2*p.refitAt {
+		if len(*p.mem) >= 2*p.refitAt && p.refitAt <= fitSubset {
 			fit(p)
 		}
 	}

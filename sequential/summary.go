@@ -157,13 +157,14 @@ func Summarize(draws []Draw, data []*Datum, opt SummaryOptions) (Summary, error)
 			sum.NumSegments[p.k] += p.w / wsum
 		}
 	}
-	sum.Partition = pointPartition(parts, opt.MaxSweeps)
-	sum.Binder = expectedBinderParts(parts, sum.Partition)
+	pairs := pairParts(draws, w, parts)
+	sum.Partition = pointPartition(parts, pairs, opt.MaxSweeps)
+	sum.Binder = expectedBinderParts(pairs, sum.Partition)
 	k := 0
 	for _, c := range sum.Partition {
 		k = max(k, c+1)
 	}
-	sum.Membership = membership(parts, sum.Partition, k)
+	sum.Membership = membership(pairs, sum.Partition, k)
 	sum.Segments = segmentSummaries(draws, w, data, sum.Partition, k, opt.Prior)
 	sum.Next = nextSummaries(draws, w, data, opt)
 	return sum, nil
@@ -211,13 +212,15 @@ func membership(parts []*drawPartition, partition []int, k int) [][]float64 {
 	s := newBinderSearch(parts, z, k)
 	flat := make([]float64, len(partition)*k)
 	out := make([][]float64, len(partition))
+	s.beginScan()
 	for i := range out {
 		row := flat[i*k : (i+1)*k : (i+1)*k]
+		s.enter(i)
 		s.affinity(i)
 		for c := range row {
 			q, others := s.aff[c]/s.wsum, float64(s.size[c])
 			if c == partition[i] {
-				q, others = q-1, others-1
+				others--
 			}
 			if others == 0 {
 				row[c] = 1

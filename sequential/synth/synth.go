@@ -213,3 +213,53 @@ func round6(v float64) float64 {
 	fmt.Sscanf(fmt.Sprintf("%.6g", v), "%g", &f)
 	return f
 }
+
+// Layout says how far apart the true segments of a drawn category lie.
+type Layout int
+
+const (
+	// Separated segments differ in scale by a factor of about 2.2 from one
+	// to the next, and in shape and report chance as well: most products
+	// belong clearly to one segment.
+	Separated Layout = iota
+	// Overlapping segments differ in scale by a factor of about 1.35 and
+	// share similar shapes: many products could belong to either of two
+	// neighbours, and the number of segments itself is uncertain.
+	Overlapping
+)
+
+// String returns "separated" or "overlapping".
+func (l Layout) String() string {
+	if l == Overlapping {
+		return "overlapping"
+	}
+	return "separated"
+}
+
+// RandomConfig draws a fictional category of the given size with 3 to 5
+// true segments laid out as asked, for the agreement and benchmark runs
+// that need many different categories. Shares are drawn uniformly and
+// normalised, with no segment under 10% of the products.
+func RandomConfig(products int, layout Layout, src *rand.Rand) Config {
+	k := 3 + src.IntN(3)
+	cfg := Config{Category: fmt.Sprintf("larkfield-%s-%d", layout, k), Products: products, Competitors: 10, FirstID: 1001}
+	order := src.Perm(k)
+	for c := 0; c < k; c++ {
+		spec := SegmentSpec{Name: fmt.Sprintf("segment-%d", c+1), Share: 1 + src.Float64()}
+		r := float64(order[c])
+		switch layout {
+		case Overlapping:
+			spec.S = 0.18 * math.Pow(1.35, r)
+			spec.K = 1.2 + 0.8*src.Float64()
+			spec.A = 0.8 + 0.7*src.Float64()
+			spec.P = 0.3 + 0.2*src.Float64()
+		default:
+			spec.S = 0.05 * math.Pow(2.2, r)
+			spec.K = 1 + 2*src.Float64()
+			spec.A = 0.6 + 1.9*src.Float64()
+			spec.P = 0.2 + 0.5*src.Float64()
+		}
+		cfg.Segments = append(cfg.Segments, spec)
+	}
+	return cfg
+}
