@@ -137,6 +137,14 @@ func (g *Gibbs) Draw() Draw {
 // NumSegments returns the number of occupied segments now.
 func (g *Gibbs) NumSegments() int { return g.st.numSegments() }
 
+// ProposeSplitMerge makes n split-merge proposals on the current state,
+// outside any sweep, and returns their outcomes (also added to Moves).
+func (g *Gibbs) ProposeSplitMerge(src *rand.Rand, n int) MoveStats {
+	m := g.st.splitMergeMoves(float64(n), src)
+	g.moves = g.moves.Add(m)
+	return m
+}
+
 // Moves returns the split-merge proposals and acceptances so far.
 func (g *Gibbs) Moves() MoveStats { return g.moves }
 
