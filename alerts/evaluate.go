@@ -115,7 +115,7 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		SegmentIDs:  lab.ids,
 	}
 	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: n, Segments: k,
-		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: finiteOrNil(r.MeanSurprise)}
+		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: Float(r.MeanSurprise)}
 	emit := func(kind Kind, subject string, data any) {
 		out.Events = append(out.Events, NewEvent(r.Category, r.Refit, kind, subject, data))
 	}
@@ -271,8 +271,9 @@ func missedRule(cfg Config, am AlertMemory, had bool, next sequential.NextSummar
 }
 
 // previousARI is the adjusted Rand index between the previous and the new
-// point partitions over the products in both, or nil when fewer than two.
-func previousARI(prevPoint map[string]string, products, point []string) *float64 {
+// point partitions over the products in both; undefined when fewer than
+// two.
+func previousARI(prevPoint map[string]string, products, point []string) Float {
 	var a, b []int
 	names := map[string]int{}
 	num := func(id string) int {
@@ -290,9 +291,9 @@ func previousARI(prevPoint map[string]string, products, point []string) *float64
 		}
 	}
 	if len(a) < 2 {
-		return nil
+		return Float(math.NaN())
 	}
-	return finiteOrNil(sequential.AdjustedRand(a, b))
+	return Float(sequential.AdjustedRand(a, b))
 }
 
 // definedPrefix returns the leading values of x up to the first NaN.

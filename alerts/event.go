@@ -4,9 +4,6 @@ import (
 	"crypto/sha256"
 	"encoding/binary"
 	"encoding/hex"
-	"encoding/json"
-	"fmt"
-	"time"
 )
 
 // Kind names what an event reports. Its string is the last token of the
@@ -25,17 +22,27 @@ const (
 	KindSummary Kind = "summary" // one per refit, last
 )
 
-// Type returns the CloudEvents type of the kind, e.g.
-// "rivalmix.segment.moved" or "rivalmix.competitor.missed"; "" for an
-// unknown kind.
-func (k Kind) Type() string {
+// typeSuffix returns the part of the CloudEvents type after the
+// producer's prefix: "segment.moved", "competitor.missed" or
+// "refit.summary"; "" for an unknown kind.
+func (k Kind) typeSuffix() string {
 	switch k {
 	case KindMoved, KindBorn, KindRetired, KindSplit, KindMerged:
-		return "rivalmix.segment." + string(k)
+		return "segment." + string(k)
 	case KindMissed, KindCleared:
-		return "rivalmix.competitor." + string(k)
+		return "competitor." + string(k)
 	case KindSummary:
-		return "rivalmix.refit.summary"
+		return "refit.summary"
+	}
+	return ""
+}
+
+// Type returns the CloudEvents type of the kind under a reverse-DNS
+// prefix, e.g. "com.example.rivalmix.segment.moved" with
+// DefaultTypePrefix; "" for an unknown kind.
+func (k Kind) Type(prefix string) string {
+	if s := k.typeSuffix(); s != "" {
+		return prefix + "." + s
 	}
 	return ""
 }
@@ -82,9 +89,6 @@ func EventID(category, refit string, kind Kind, subject string) string {
 	return hex.EncodeToString(sum[:16])
 }
 
-// Type returns the CloudEvents type of the event's kind.
-func (e Event) Type() string { return e.Kind.Type() }
-
 // NATSSubject returns prefix.<category>.<kind>, for example
 // "rivalmix.out.breakfast-cereal.moved" with DefaultSubjectPrefix. The
 // category is used as it is: it must be one subject token (no '.', '*',
@@ -92,58 +96,6 @@ func (e Event) Type() string { return e.Kind.Type() }
 // subject.
 func (e Event) NATSSubject(prefix string) string {
 	return prefix + "." + e.Category + "." + string(e.Kind)
-}
-
-// cloudEvent is the structured-mode JSON form of CloudEvents 1.0, fields
-// in the order the specification lists them.
-type cloudEvent struct {
-	SpecVersion     string          `json:"specversion"`
-	ID              string          `json:"id"`
-	Source          string          `json:"source"`
-	Type            string          `json:"type"`
-	Subject         string          `json:"subject,omitempty"`
-	Time            string          `json:"time,omitempty"`
-	DataContentType string          `json:"datacontenttype"`
-	Data            json.RawMessage `json:"data"`
-}
-
-// CloudEventContentType is the content type of CloudEvent's output, for
-// the message's Content-Type header in the structured mode of the
-// CloudEvents NATS binding.
-const CloudEventContentType = "application/cloudevents+json"
-
-// CloudEvent returns the event as one CloudEvents 1.0 JSON object
-// (structured content mode): specversion "1.0", id, source, type,
-// subject, time (RFC 3339 in UTC, omitted for the zero time),
-// datacontenttype "application/json" and data. source is a URI-reference
-// naming the producer, e.g. "/rivalmix/breakfast-cereal"; at is the time
-// the caller assigns to the event (this package reads no clock). Equal
-// inputs give equal bytes; the result is owned by the caller.
-//
-// Errors wrap ErrEvent: empty source, unknown kind, or a body that does
-// not encode (a NaN or infinite number).
-func (e Event) CloudEvent(source string, at time.Time) ([]byte, error) {
-	if source == "" {
-		return nil, fmt.Errorf("%w: event %s: source is empty", ErrEvent, e.ID)
-	}
-	typ := e.Type()
-	if typ == "" {
-		return nil, fmt.Errorf("%w: event %s: kind %q unknown", ErrEvent, e.ID, e.Kind)
-	}
-	data, err := json.Marshal(e.Data)
-	if err != nil {
-		return nil, fmt.Errorf("%w: event %s data: %w", ErrEvent, e.ID, err)
-	}
-	ce := cloudEvent{SpecVersion: "1.0", ID: e.ID, Source: source, Type: typ, Subject: e.Subject,
-		DataContentType: "application/json", Data: data}
-	if !at.IsZero() {
-		ce.Time = at.UTC().Format(time.RFC3339Nano)
-	}
-	out, err := json.Marshal(ce)
-	if err != nil {
-		return nil, fmt.Errorf("%w: event %s: %w", ErrEvent, e.ID, err)
-	}
-	return out, nil
 }
 
 // Moved is the body of a moved event: the product's reported segment
@@ -303,9 +255,9 @@ type RefitSummary struct {
 	// replaced, of the log predictive density (nats) that
 	// sequential.Particles.Add and Replace returned: lower means more
 	// surprising. Absent when the refit changed no datum.
-	MeanSurprise *float64 `json:"mean_surprise,omitempty"`
+	MeanSurprise Float `json:"mean_surprise,omitzero"`
 	// ARI, in [-1, 1], is the adjusted Rand index between the previous and
 	// the new point partition over the products present in both; absent
 	// on the first refit or with fewer than two such products.
-	ARI *float64 `json:"ari,omitempty"`
+	ARI Float `json:"ari,omitzero"`
 }

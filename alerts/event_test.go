@@ -33,7 +33,7 @@ func eventRun(t *testing.T) [][]byte {
 		o := mustEvaluate(t, cfg, mem, r)
 		var buf bytes.Buffer
 		for _, e := range o.Events {
-			b, err := e.CloudEvent("/rivalmix/"+e.Category, fixedTime)
+			b, err := e.CloudEvent(DefaultCloudEventConfig(), fixedTime)
 			if err != nil {
 				t.Fatal(err)
 			}
@@ -60,10 +60,10 @@ func TestEventsByteIdentical(t *testing.T) {
 		}
 	}
 	all := string(bytes.Join(a, nil))
-	for _, typ := range []string{"rivalmix.segment.born", "rivalmix.segment.retired", "rivalmix.segment.split",
-		"rivalmix.segment.merged", "rivalmix.segment.moved", "rivalmix.competitor.missed",
-		"rivalmix.competitor.cleared", "rivalmix.refit.summary"} {
-		if !strings.Contains(all, `"type":"`+typ+`"`) {
+	for _, typ := range []string{"segment.born", "segment.retired", "segment.split",
+		"segment.merged", "segment.moved", "competitor.missed",
+		"competitor.cleared", "refit.summary"} {
+		if !strings.Contains(all, `"type":"`+DefaultTypePrefix+"."+typ+`"`) {
 			t.Errorf("no %s event in the run", typ)
 		}
 	}
@@ -81,8 +81,18 @@ func TestEventOrderIgnoresProductOrder(t *testing.T) {
 	}
 	w1 := mustEvaluate(t, cfg, Memory{}, handRefit(t, "W1", 2, prods))
 	w1r := mustEvaluate(t, cfg, Memory{}, handRefit(t, "W1", 2, rev))
-	if !reflect.DeepEqual(w1.Events, w1r.Events) || !reflect.DeepEqual(w1.Memory, w1r.Memory) {
-		t.Errorf("events or memory depend on product order:\n%+v\n%+v", w1.Events, w1r.Events)
+	// Compared as JSON, what consumers see: an undefined Float (the ARI
+	// of a first refit) is NaN, which reflect.DeepEqual never matches.
+	a, err := json.Marshal(w1.Events)
+	if err != nil {
+		t.Fatal(err)
+	}
+	b, err := json.Marshal(w1r.Events)
+	if err != nil {
+		t.Fatal(err)
+	}
+	if !bytes.Equal(a, b) || !reflect.DeepEqual(w1.Memory, w1r.Memory) {
+		t.Errorf("events or memory depend on product order:\n%s\n%s", a, b)
 	}
 }
 
@@ -141,12 +151,13 @@ func TestCloudEventEnvelope(t *testing.T) {
 	t.Parallel()
 	e := NewEvent("breakfast-cereal", "2026-W48", KindMoved, "P-1042",
 		Moved{Category: "breakfast-cereal", Refit: "2026-W48", Product: "P-1042", From: "S1", To: "S3", FromMembership: 0.2, ToMembership: 0.75})
-	b, err := e.CloudEvent("/rivalmix/breakfast-cereal", time.Date(2026, 11, 30, 7, 0, 0, 0, time.FixedZone("CET", 3600)))
+	cfg := CloudEventConfig{Source: "https://pricing.larkfield.example/rivalmix/", TypePrefix: "example.larkfield.pricing"}
+	b, err := e.CloudEvent(cfg, time.Date(2026, 11, 30, 7, 0, 0, 0, time.FixedZone("CET", 3600)))
 	if err != nil {
 		t.Fatal(err)
 	}
-	want := `{"specversion":"1.0","id":"` + e.ID + `","source":"/rivalmix/breakfast-cereal",` +
-		`"type":"rivalmix.segment.moved","subject":"P-1042","time":"2026-11-30T06:00:00Z",` +
+	want := `{"specversion":"1.0","id":"` + e.ID + `","source":"https://pricing.larkfield.example/rivalmix/breakfast-cereal",` +
+		`"type":"example.larkfield.pricing.segment.moved","subject":"P-1042","time":"2026-11-30T06:00:00Z",` +
 		`"datacontenttype":"application/json","data":{"category":"breakfast-cereal","refit":"2026-W48",` +
 		`"product":"P-1042","from":"S1","to":"S3","from_membership":0.2,"to_membership":0.75}}`
 	if string(b) != want {
@@ -159,20 +170,32 @@ func TestCloudEventEnvelope(t *testing.T) {
 		t.Errorf("NATSSubject with prefix = %s", got)
 	}
 
-	if _, err := e.CloudEvent("", fixedTime); !errors.Is(err, ErrEvent) {
-		t.Errorf("empty source: %v, want ErrEvent", err)
+	def := DefaultCloudEventConfig()
+	for name, bad := range map[string]CloudEventConfig{
+		"empty source":         {TypePrefix: DefaultTypePrefix},
+		"relative source":      {Source: "/rivalmix", TypePrefix: DefaultTypePrefix},
+		"source with a query":  {Source: "https://pricing.example/rivalmix?x=1", TypePrefix: DefaultTypePrefix},
+		"one-label type":       {Source: DefaultSource, TypePrefix: "rivalmix"},
+		"type with a space":    {Source: DefaultSource, TypePrefix: "com.example.rival mix"},
+		"type with empty part": {Source: DefaultSource, TypePrefix: "com..rivalmix"},
+	} {
+		if _, err := e.CloudEvent(bad, fixedTime); !errors.Is(err, ErrEvent) {
+			t.Errorf("%s: %v, want ErrEvent", name, err)
+		}
 	}
-	bad := NewEvent("c", "r", KindMissed, "p", Missed{Probability: math.NaN()})
-	if _, err := bad.CloudEvent("/x", fixedTime); !errors.Is(err, ErrEvent) {
+	nan := NewEvent("c", "r", KindMissed, "p", Missed{Probability: math.NaN()})
+	if _, err := nan.CloudEvent(def, fixedTime); !errors.Is(err, ErrEvent) {
 		t.Errorf("NaN body: %v, want ErrEvent", err)
 	}
 	unknown := NewEvent("c", "r", Kind("teleported"), "p", nil)
-	if _, err := unknown.CloudEvent("/x", fixedTime); !errors.Is(err, ErrEvent) {
+	if _, err := unknown.CloudEvent(def, fixedTime); !errors.Is(err, ErrEvent) {
 		t.Errorf("unknown kind: %v, want ErrEvent", err)
 	}
-	noTime, err := e.CloudEvent("/x", time.Time{})
-	if err != nil || strings.Contains(string(noTime), `"time"`) {
-		t.Errorf("zero time: %s, %v; want no time attribute", noTime, err)
+	if _, err := e.CloudEvent(def, time.Time{}); !errors.Is(err, ErrEvent) {
+		t.Errorf("zero time: %v, want ErrEvent (every event carries a time)", err)
+	}
+	if got := def.SourceOf("breakfast-cereal"); got != "urn:rivalmix:breakfast-cereal" {
+		t.Errorf("default source of breakfast-cereal = %s", got)
 	}
 }
 

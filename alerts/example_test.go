@@ -63,19 +63,19 @@ func ExampleEvaluate() {
 		fmt.Println(r.id, out.Labels)
 		for _, e := range out.Events {
 			if e.Kind != alerts.KindSummary {
-				fmt.Printf("  %s %s -> %s\n", e.Type(), e.Subject, e.NATSSubject(alerts.DefaultSubjectPrefix))
+				fmt.Printf("  %s %s -> %s\n", e.Kind.Type("com.example.rivalmix"), e.Subject, e.NATSSubject(alerts.DefaultSubjectPrefix))
 			}
 		}
 	}
 	// Output:
 	// 2026-W45 [S1 S1 S1 S1 S2 S2]
-	//   rivalmix.segment.born S1 -> rivalmix.out.breakfast-cereal.born
-	//   rivalmix.segment.born S2 -> rivalmix.out.breakfast-cereal.born
-	//   rivalmix.competitor.missed P-1001 -> rivalmix.out.breakfast-cereal.missed
+	//   com.example.rivalmix.segment.born S1 -> rivalmix.out.breakfast-cereal.born
+	//   com.example.rivalmix.segment.born S2 -> rivalmix.out.breakfast-cereal.born
+	//   com.example.rivalmix.competitor.missed P-1001 -> rivalmix.out.breakfast-cereal.missed
 	// 2026-W46 [S1 S1 S1 S1 S2 S2]
 	// 2026-W47 [S1 S1 S1 S1 S2 S2]
 	// 2026-W48 [S1 S1 S1 S2 S2 S2]
-	//   rivalmix.segment.moved P-1004 -> rivalmix.out.breakfast-cereal.moved
+	//   com.example.rivalmix.segment.moved P-1004 -> rivalmix.out.breakfast-cereal.moved
 }
 
 // The CloudEvents form of an event, with the time the caller assigns. The
@@ -84,14 +84,14 @@ func ExampleEvaluate() {
 func ExampleEvent_CloudEvent() {
 	e := alerts.NewEvent("breakfast-cereal", "2026-W48", alerts.KindRetired, "S2",
 		alerts.Retired{Category: "breakfast-cereal", Refit: "2026-W48", Segment: "S2", Size: 14, Successor: "S1"})
-	b, err := e.CloudEvent("/rivalmix/breakfast-cereal", time.Date(2026, 11, 30, 6, 0, 0, 0, time.UTC))
+	b, err := e.CloudEvent(alerts.DefaultCloudEventConfig(), time.Date(2026, 11, 30, 6, 0, 0, 0, time.UTC))
 	if err != nil {
 		fmt.Println(err)
 		return
 	}
 	fmt.Println(string(b))
 	// Output:
-	// {"specversion":"1.0","id":"b083d0c21729920c845726de9670efa3","source":"/rivalmix/breakfast-cereal","type":"rivalmix.segment.retired","subject":"S2","time":"2026-11-30T06:00:00Z","datacontenttype":"application/json","data":{"category":"breakfast-cereal","refit":"2026-W48","segment":"S2","size":14,"successor":"S1"}}
+	// {"specversion":"1.0","id":"b083d0c21729920c845726de9670efa3","source":"urn:rivalmix:breakfast-cereal","type":"com.example.rivalmix.segment.retired","subject":"S2","time":"2026-11-30T06:00:00Z","datacontenttype":"application/json","data":{"category":"breakfast-cereal","refit":"2026-W48","segment":"S2","size":14,"successor":"S1"}}
 }
 
 // Pairing previous segments (rows) with new ones (columns) by overlap.

@@ -1,6 +1,9 @@
 package alerts
 
-import "slices"
+import (
+	"maps"
+	"slices"
+)
 
 // labelling is the result of matching a new point partition to the
 // previous labelled one.
@@ -35,7 +38,7 @@ func labelSegments(prevPoint map[string]string, issued int, products []string, p
 	for _, id := range prevPoint {
 		prevSize[id]++
 	}
-	prevIDs := sortedKeys(prevSize)
+	prevIDs := slices.Sorted(maps.Keys(prevSize))
 	slices.SortFunc(prevIDs, compareSegmentIDs)
 	row := make(map[string]int, len(prevIDs))
 	for r, id := range prevIDs {
@@ -71,7 +74,7 @@ func labelSegments(prevPoint map[string]string, issued int, products []string, p
 	for c := range lab.ids {
 		if lab.ids[c] == "" {
 			lab.issued++
-			lab.ids[c] = segmentID(lab.issued)
+			lab.ids[c] = SegmentID(lab.issued)
 			lab.born = append(lab.born, c)
 		}
 		lab.live[lab.ids[c]] = c

@@ -37,8 +37,8 @@ func TestIDsFirstRefitBornInSizeOrder(t *testing.T) {
 	if !slices.Equal(out.Labels, out.Point) {
 		t.Errorf("labels %v differ from point ids %v on the first refit", out.Labels, out.Point)
 	}
-	if out.Summary.ARI != nil {
-		t.Errorf("ARI %v on the first refit, want absent", *out.Summary.ARI)
+	if out.Summary.ARI.Defined() {
+		t.Errorf("ARI %v on the first refit, want absent", out.Summary.ARI)
 	}
 }
 
@@ -58,7 +58,7 @@ func TestIDsUnchangedAndRelabelled(t *testing.T) {
 		if len(out.Events) != 1 || out.Events[0].Kind != KindSummary {
 			t.Errorf("refit %s: events %v, want only the summary", out.Memory.Refit, out.Events)
 		}
-		if out.Summary.ARI == nil || *out.Summary.ARI != 1 {
+		if out.Summary.ARI != 1 {
 			t.Errorf("refit %s: ARI %v, want 1", out.Memory.Refit, out.Summary.ARI)
 		}
 		if out.Memory.Issued != 3 {
@@ -149,8 +149,8 @@ func TestIDsZeroOverlapIsNoMatch(t *testing.T) {
 			t.Errorf("retired %s has successor %q, want none", e.Subject, s)
 		}
 	}
-	if w2.Summary.ARI != nil {
-		t.Errorf("ARI %v with no common product, want absent", *w2.Summary.ARI)
+	if w2.Summary.ARI.Defined() {
+		t.Errorf("ARI %v with no common product, want absent", w2.Summary.ARI)
 	}
 	if _, ok := w2.Memory.Point["aa"]; ok {
 		t.Error("withdrawn product aa still in memory")

@@ -2,7 +2,7 @@ package alerts
 
 import (
 	"fmt"
-	"math"
+	"maps"
 	"slices"
 	"strconv"
 	"strings"
@@ -68,7 +68,7 @@ func (m Memory) Validate() error {
 		return fmt.Errorf("%w: issued %d, want >= 0", ErrMemory, m.Issued)
 	}
 	check := func(field string, ids map[string]string) error {
-		for _, p := range sortedKeys(ids) {
+		for _, p := range slices.Sorted(maps.Keys(ids)) {
 			if p == "" {
 				return fmt.Errorf("%w: %s has an empty product id", ErrMemory, field)
 			}
@@ -85,18 +85,18 @@ func (m Memory) Validate() error {
 	if err := check("reported", m.Reported); err != nil {
 		return err
 	}
-	for _, p := range sortedKeys(m.Provisional) {
+	for _, p := range slices.Sorted(maps.Keys(m.Provisional)) {
 		if p == "" || m.Provisional[p] < 1 {
 			return fmt.Errorf("%w: provisional[%q] = %d, want a product and a count >= 1", ErrMemory, p, m.Provisional[p])
 		}
 	}
-	for _, p := range sortedKeys(m.Pending) {
+	for _, p := range slices.Sorted(maps.Keys(m.Pending)) {
 		pm := m.Pending[p]
 		if k, ok := parseSegmentID(pm.To); p == "" || !ok || k > m.Issued || pm.Count < 1 {
 			return fmt.Errorf("%w: pending[%q] = %+v, want a product, S1..S%d and count >= 1", ErrMemory, p, pm, m.Issued)
 		}
 	}
-	for _, p := range sortedKeys(m.Alert) {
+	for _, p := range slices.Sorted(maps.Keys(m.Alert)) {
 		a := m.Alert[p]
 		if p == "" {
 			return fmt.Errorf("%w: alert has an empty product id", ErrMemory)
@@ -108,8 +108,11 @@ func (m Memory) Validate() error {
 	return nil
 }
 
-// segmentID returns the id of the k-th segment ever issued (k >= 1).
-func segmentID(k int) string { return "S" + strconv.Itoa(k) }
+// SegmentID returns the id of the k-th segment ever issued (k >= 1): S1,
+// S2, ... This package is the one place that names segments; a batch fit
+// with no history names its point segments the way a category's first
+// refit does.
+func SegmentID(k int) string { return "S" + strconv.Itoa(k) }
 
 // parseSegmentID returns k for "S<k>", k >= 1 written without leading
 // zeros or sign.
@@ -144,22 +147,4 @@ func compareSegmentIDs(a, b string) int {
 		return 1
 	}
 	return strings.Compare(a, b)
-}
-
-func sortedKeys[V any](m map[string]V) []string {
-	keys := make([]string, 0, len(m))
-	for k := range m {
-		keys = append(keys, k)
-	}
-	slices.Sort(keys)
-	return keys
-}
-
-// finiteOrNil returns &x, or nil when x is NaN or infinite (JSON has no
-// encoding for those).
-func finiteOrNil(x float64) *float64 {
-	if math.IsNaN(x) || math.IsInf(x, 0) {
-		return nil
-	}
-	return &x
 }

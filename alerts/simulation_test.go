@@ -2,8 +2,10 @@ package alerts
 
 import (
 	"fmt"
+	"maps"
 	"math"
 	"math/rand/v2"
+	"slices"
 	"strings"
 	"testing"
 
@@ -118,7 +120,7 @@ func majorityIDs(sr simRefit, nseg int) []string {
 	out := make([]string, nseg)
 	for s := range count {
 		best := 0
-		for _, id := range sortedKeys(count[s]) {
+		for _, id := range slices.Sorted(maps.Keys(count[s])) {
 			if count[s][id] > best {
 				out[s], best = id, count[s][id]
 			}
@@ -190,8 +192,8 @@ func scoreMoves(runs []simRefit, switchAt, nseg int) moveScore {
 		sc.falseRate = append(sc.falseRate, rate)
 		s := sr.out.Summary
 		ari := "-"
-		if s.ARI != nil {
-			ari = fmt.Sprintf("%.3f", *s.ARI)
+		if s.ARI.Defined() {
+			ari = fmt.Sprintf("%.3f", float64(s.ARI))
 		}
 		fmt.Fprintf(&table, "%5d  %8d  %5d  %5d  %4d  %7d  %11d  %6d  %7d  %6d  %6d  %5.1f  %9d  %8s  %v\n",
 			r, s.Segments, s.Moves, falseMoves, late, s.Pending, s.Provisional, s.Births, s.Retirements, s.Alerts, s.Clears, s.ESS, s.Diversity, ari, maj)

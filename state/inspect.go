@@ -4,10 +4,6 @@ import (
 	"encoding/binary"
 	"encoding/json"
 	"fmt"
-	"io"
-	"strconv"
-	"text/tabwriter"
-	"time"
 
 	bolt "go.etcd.io/bbolt"
 )
@@ -131,72 +127,4 @@ func summarizeCategory(b *bolt.Bucket, name string) (CategorySummary, error) {
 		return nil
 	})
 	return cs, err
-}
-
-// Inspect writes a human-readable overview of the file to w: schema,
-// size, input position, outbox size and one line per category with its
-// product count, segment count, last refit and snapshot size. It is what
-// `rivalmix inspect --state FILE` prints.
-func (s *Store) Inspect(w io.Writer) error {
-	sum, err := s.Summary()
-	if err != nil {
-		return err
-	}
-	return sum.Write(w)
-}
-
-// Write formats the summary as Inspect does.
-func (sum Summary) Write(w io.Writer) error {
-	tw := tabwriter.NewWriter(w, 0, 0, 1, ' ', 0)
-	fmt.Fprintf(tw, "state file:\t%s\n", sum.Path)
-	fmt.Fprintf(tw, "schema:\t%d\n", sum.Schema)
-	fmt.Fprintf(tw, "size:\t%d bytes\n", sum.FileBytes)
-	if sum.HasPosition {
-		stream := sum.Position.Stream
-		if stream == "" {
-			stream = "-"
-		}
-		fmt.Fprintf(tw, "input position:\tstream %s, sequence %d, updated %s\n",
-			stream, sum.Position.StreamSeq, formatTime(sum.Position.UpdatedAt))
-	} else {
-		fmt.Fprintf(tw, "input position:\tnone (the input stream will be read from its start)\n")
-	}
-	if sum.Outbox > 0 {
-		fmt.Fprintf(tw, "outbox:\t%d pending (sequences %d..%d)\n", sum.Outbox, sum.OutboxFirst, sum.OutboxLast)
-	} else {
-		fmt.Fprintf(tw, "outbox:\t0 pending\n")
-	}
-	fmt.Fprintf(tw, "categories:\t%d\n", len(sum.Categories))
-	if err := tw.Flush(); err != nil {
-		return fmt.Errorf("state: write summary: %w", err)
-	}
-	if len(sum.Categories) == 0 {
-		return nil
-	}
-	tw = tabwriter.NewWriter(w, 0, 0, 2, ' ', 0)
-	fmt.Fprintf(tw, "\nCATEGORY\tPRODUCTS\tWITHDRAWN\tSEGMENTS\tREFITS\tLAST REFIT\tSNAPSHOT BYTES\tUPDATED\n")
-	for _, c := range sum.Categories {
-		segments, refits, last, updated := "-", "-", "-", "-"
-		if c.HasMeta {
-			segments = strconv.Itoa(c.Meta.Segments)
-			refits = strconv.Itoa(c.Meta.Refits)
-			if c.Meta.LastRefit != "" {
-				last = c.Meta.LastRefit
-			}
-			updated = formatTime(c.Meta.UpdatedAt)
-		}
-		fmt.Fprintf(tw, "%s\t%d\t%d\t%s\t%s\t%s\t%d\t%s\n",
-			c.Category, c.Products, c.Withdrawn, segments, refits, last, c.SnapshotBytes, updated)
-	}
-	if err := tw.Flush(); err != nil {
-		return fmt.Errorf("state: write summary: %w", err)
-	}
-	return nil
-}
-
-func formatTime(t time.Time) string {
-	if t.IsZero() {
-		return "-"
-	}
-	return t.UTC().Format(time.RFC3339)
 }

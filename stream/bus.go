@@ -10,6 +10,8 @@ import (
 
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
+
+	"rivalmix/stream/input"
 )
 
 // BusConfig names the JetStream streams and the durable consumer the
@@ -20,7 +22,9 @@ type BusConfig struct {
 	InputStream string
 	// InputSubjects is the input stream's subject filter, a literal
 	// prefix followed by ".>" ("rivalmix.in.>"); the category is the one
-	// token after the prefix.
+	// token after the prefix. The stream also takes the bare prefix
+	// ("rivalmix.in"), so that a message published without a category is
+	// stored and rejected with its reason instead of refused at publish.
 	InputSubjects string
 	// OutputStream holds the published events ("RIVALMIX_OUT").
 	OutputStream string
@@ -79,7 +83,7 @@ type BusConfig struct {
 func DefaultBusConfig() BusConfig {
 	return BusConfig{
 		InputStream:     "RIVALMIX_IN",
-		InputSubjects:   DefaultInputPrefix + ".>",
+		InputSubjects:   input.DefaultInputPrefix + ".>",
 		OutputStream:    "RIVALMIX_OUT",
 		OutputSubjects:  "rivalmix.out.>",
 		RejectedStream:  "RIVALMIX_REJECTED",
@@ -165,7 +169,7 @@ func (c BusConfig) Validate() error {
 }
 
 // InputPrefix returns the literal part of InputSubjects ("rivalmix.in"),
-// the prefix [CategoryFromSubject] takes. Only meaningful when Validate
+// the prefix input.CategoryFromSubject takes. Only meaningful when Validate
 // passes.
 func (c BusConfig) InputPrefix() string { return strings.TrimSuffix(c.InputSubjects, ".>") }
 
@@ -178,7 +182,7 @@ func (c BusConfig) OutputPrefix() string { return strings.TrimSuffix(c.OutputSub
 // RejectedPrefix.<category>, or RejectedPrefix._unknown when the subject
 // names no valid category.
 func (c BusConfig) RejectedSubject(inputSubject string) string {
-	cat, err := CategoryFromSubject(inputSubject, c.InputPrefix())
+	cat, err := input.CategoryFromSubject(inputSubject, c.InputPrefix())
 	if err != nil {
 		cat = UnknownCategory
 	}
@@ -203,7 +207,7 @@ func literalSubject(field, s string) error {
 	return nil
 }
 
-// StreamConfigs returns the configurations EnsureStreams applies: input,
+// StreamConfigs returns the configurations CreateStreams applies: input,
 // output and rejected, in that order. All three are file-backed with the
 // default limits retention, so the input stream keeps every message and a
 // lost state file can be rebuilt by replaying it.
@@ -211,7 +215,7 @@ func (c BusConfig) StreamConfigs() []jetstream.StreamConfig {
 	in := jetstream.StreamConfig{
 		Name:        c.InputStream,
 		Description: "rivalmix input: product refit results and control messages",
-		Subjects:    []string{c.InputSubjects},
+		Subjects:    c.inputSubjects(),
 		Storage:     jetstream.FileStorage,
 		Replicas:    c.Replicas,
 		MaxMsgSize:  c.MaxMsgSize,
@@ -235,30 +239,33 @@ func (c BusConfig) StreamConfigs() []jetstream.StreamConfig {
 	return []jetstream.StreamConfig{in, out, rej}
 }
 
+// inputSubjects are the input stream's subjects: the categories' and the
+// bare prefix.
+func (c BusConfig) inputSubjects() []string { return []string{c.InputSubjects, c.InputPrefix()} }
+
 // ConsumerConfig returns the durable pull consumer EnsureStreams applies
 // to the input stream: explicit acks, AckWait, MaxDeliver and BackOff,
-// delivering from the first message.
+// delivering every input subject from the first message.
 func (c BusConfig) ConsumerConfig() jetstream.ConsumerConfig {
 	return jetstream.ConsumerConfig{
-		Durable:       c.Durable,
-		Description:   "rivalmix worker",
-		DeliverPolicy: jetstream.DeliverAllPolicy,
-		AckPolicy:     jetstream.AckExplicitPolicy,
-		AckWait:       c.AckWait,
-		MaxDeliver:    c.MaxDeliver,
-		BackOff:       c.BackOff,
-		FilterSubject: c.InputSubjects,
-		MaxAckPending: c.MaxAckPending,
+		Durable:        c.Durable,
+		Description:    "rivalmix worker",
+		DeliverPolicy:  jetstream.DeliverAllPolicy,
+		AckPolicy:      jetstream.AckExplicitPolicy,
+		AckWait:        c.AckWait,
+		MaxDeliver:     c.MaxDeliver,
+		BackOff:        c.BackOff,
+		FilterSubjects: c.inputSubjects(),
+		MaxAckPending:  c.MaxAckPending,
 	}
 }
 
-// EnsureStreams creates the input, output and rejected streams and the
-// durable consumer, or updates them to cfg when they exist, so it is safe
-// to call at every start. A change the server cannot make in place (the
-// storage type, the consumer's deliver policy) is an error naming the
-// stream or consumer. Fetch the consumer afterwards with
-// js.Consumer(ctx, cfg.InputStream, cfg.Durable).
-func EnsureStreams(ctx context.Context, js jetstream.JetStream, cfg BusConfig) error {
+// CreateStreams creates the input, output and rejected streams, or
+// updates them to cfg when they exist, so it is safe to call at every
+// start. It leaves the durable consumer alone: the service re-creates that
+// at Run to deliver from the state file's position. A change the server
+// cannot make in place (the storage type) is an error naming the stream.
+func CreateStreams(ctx context.Context, js jetstream.JetStream, cfg BusConfig) error {
 	if err := cfg.Validate(); err != nil {
 		return err
 	}
@@ -266,6 +273,18 @@ func EnsureStreams(ctx context.Context, js jetstream.JetStream, cfg BusConfig) e
 		if _, err := js.CreateOrUpdateStream(ctx, sc); err != nil {
 			return fmt.Errorf("stream: create or update stream %s (subjects %v): %w", sc.Name, sc.Subjects, err)
 		}
+	}
+	return nil
+}
+
+// EnsureStreams runs CreateStreams and creates the durable consumer, or
+// updates it to cfg, for a caller that reads the input without the
+// service (tools, tests). A change the server cannot make in place (the
+// consumer's deliver policy) is an error naming the consumer. Fetch the
+// consumer afterwards with js.Consumer(ctx, cfg.InputStream, cfg.Durable).
+func EnsureStreams(ctx context.Context, js jetstream.JetStream, cfg BusConfig) error {
+	if err := CreateStreams(ctx, js, cfg); err != nil {
+		return err
 	}
 	if _, err := js.CreateOrUpdateConsumer(ctx, cfg.InputStream, cfg.ConsumerConfig()); err != nil {
 		return fmt.Errorf("stream: create or update consumer %s on stream %s: %w", cfg.Durable, cfg.InputStream, err)

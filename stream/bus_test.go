@@ -101,7 +101,9 @@ func TestEnsureStreams(t *testing.T) {
 			t.Errorf("stream %s duplicate window %s, want %s", name, sc.Duplicates, dup)
 		}
 	}
-	check(cfg.InputStream, []string{"rivalmix.in.>"}, 0)
+	// The bare prefix too, so that a message without a category is kept
+	// and rejected with its reason.
+	check(cfg.InputStream, []string{"rivalmix.in.>", "rivalmix.in"}, 0)
 	check(cfg.OutputStream, []string{"rivalmix.out.>"}, 2*time.Minute)
 	check(cfg.RejectedStream, []string{"rivalmix.rejected.>"}, 2*time.Minute)
 
@@ -111,7 +113,7 @@ func TestEnsureStreams(t *testing.T) {
 	}
 	cc := cons.CachedInfo().Config
 	if cc.AckPolicy != jetstream.AckExplicitPolicy || cc.DeliverPolicy != jetstream.DeliverAllPolicy ||
-		cc.MaxDeliver != 5 || cc.FilterSubject != "rivalmix.in.>" || cc.Durable != "rivalmix-worker" {
+		cc.MaxDeliver != 5 || !slices.Equal(cc.FilterSubjects, []string{"rivalmix.in.>", "rivalmix.in"}) || cc.Durable != "rivalmix-worker" {
 		t.Errorf("consumer config %+v", cc)
 	}
 	if !slices.Equal(cc.BackOff, cfg.BackOff) {

@@ -22,6 +22,7 @@ import (
 
 	"rivalmix/alerts"
 	"rivalmix/state"
+	"rivalmix/stream/input"
 )
 
 // crashStages are where a crash plan can stop a worker: the service's
@@ -142,8 +143,8 @@ func (c *crashingPublisher) PublishMsg(ctx context.Context, msg *nats.Msg, opts 
 func crashInput(cereal, tea *testCategory) []inputMsg {
 	r0 := refitMessages(0, cereal, tea)
 	r1 := refitMessages(1, cereal, tea)
-	bad0 := inputMsg{subject: DefaultInputPrefix + "." + cereal.name, data: []byte(`{"product":"P-1001",`)}
-	bad1 := inputMsg{subject: DefaultInputPrefix + "." + tea.name,
+	bad0 := inputMsg{subject: input.DefaultInputPrefix + "." + cereal.name, data: []byte(`{"product":"P-1001",`)}
+	bad1 := inputMsg{subject: input.DefaultInputPrefix + "." + tea.name,
 		data: []byte(`{"product":"P-3001","refit":"2026-W41","competitors":2,"relative":[0.5,0.4,0.3]}`)}
 	var in []inputMsg
 	in = append(in, r0[:len(r0)/2]...)

@@ -13,6 +13,8 @@ import (
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/jetstream"
 	"github.com/prometheus/client_golang/prometheus"
+
+	"rivalmix/stream/input"
 )
 
 // BenchmarkIngest measures sustained ingest through the real bus and
@@ -246,7 +248,7 @@ func runIngest(b *testing.B, categories, products, refits int, drift, keepESS fl
 			}
 			futures[i] = f
 			if i >= len(msgs)-categories {
-				completeSent[m.subject[len(DefaultInputPrefix)+1:]] = time.Now()
+				completeSent[m.subject[len(input.DefaultInputPrefix)+1:]] = time.Now()
 			}
 		}
 		select {

@@ -7,6 +7,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 
 	"rivalmix/alerts"
+	"rivalmix/stream/category"
 )
 
 // Outcome is what became of one input message, the label of
@@ -54,8 +55,9 @@ type Metrics struct {
 // NewMetrics creates the metrics and registers them with reg (not
 // registered when reg is nil). outboxPending and consumerPending back the
 // rivalmix_outbox_pending and rivalmix_consumer_pending gauges and are
-// called at every scrape, so they should return a value the caller already
-// keeps (a count, not a network round trip); a nil function leaves its
+// called at every scrape, so they must return a value the caller already
+// keeps (a count, or Service.ConsumerPending, which a background refresh
+// keeps), never make a network round trip; a nil function leaves its
 // gauge out. It panics if reg already holds metrics of the same names,
 // which is a wiring mistake.
 func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func() float64) *Metrics {
@@ -169,7 +171,7 @@ func (m *Metrics) ObserveCommit(d time.Duration) { m.commit.Observe(d.Seconds())
 // and missed events, and sets the category's segment count, its ESS ratio
 // (rep.ESS / particles, skipped when particles <= 0) and its mean surprise
 // (skipped when the refit changed no datum or the value is not finite).
-func (m *Metrics) ObserveRefit(rep RefitReport, particles int) {
+func (m *Metrics) ObserveRefit(rep category.RefitReport, particles int) {
 	cat := rep.Category
 	m.refits.WithLabelValues(cat).Inc()
 	m.segments.WithLabelValues(cat).Set(float64(len(rep.Summary.Segments)))

@@ -11,6 +11,7 @@ import (
 
 	"rivalmix/alerts"
 	"rivalmix/sequential"
+	"rivalmix/stream/category"
 )
 
 func TestMetrics(t *testing.T) {
@@ -29,7 +30,7 @@ func TestMetrics(t *testing.T) {
 	m.CountReplace(true)
 	m.CountReplace(false)
 	m.CountReplace(false)
-	rep := RefitReport{
+	rep := category.RefitReport{
 		Category: "cereal", Refit: "2026-W48", ESS: 192, MeanSurprise: 1.25, Changes: 4,
 		Summary: sequential.Summary{Segments: make([]sequential.SegmentSummary, 3)},
 		Events: []alerts.Event{
@@ -38,7 +39,7 @@ func TestMetrics(t *testing.T) {
 	}
 	m.ObserveRefit(rep, 256)
 	// A refit that changed nothing keeps the last surprise.
-	m.ObserveRefit(RefitReport{Category: "cereal", Refit: "2026-W49", ESS: 128, MeanSurprise: math.NaN(),
+	m.ObserveRefit(category.RefitReport{Category: "cereal", Refit: "2026-W49", ESS: 128, MeanSurprise: math.NaN(),
 		Summary: rep.Summary}, 256)
 
 	for _, c := range []prometheus.Collector{m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,

@@ -66,11 +66,11 @@ const maxReasonBytes = 1024
 // only header is content-type: application/cloudevents+json, so a
 // consumer needs no header support to read every attribute. The subject
 // is alerts.Event.NATSSubject(prefix) (prefix as BusConfig.OutputPrefix),
-// the id the event id, which the publisher sends as Nats-Msg-Id. source
-// and at are the CloudEvents source and time attributes (see
+// the id the event id, which the publisher sends as Nats-Msg-Id. cfg and
+// at give the CloudEvents source, type and time attributes (see
 // alerts.Event.CloudEvent). Errors wrap alerts.ErrEvent.
-func EncodeEvent(ev alerts.Event, prefix, source string, at time.Time) (state.OutboxEvent, error) {
-	body, err := ev.CloudEvent(source, at)
+func EncodeEvent(ev alerts.Event, prefix string, cfg alerts.CloudEventConfig, at time.Time) (state.OutboxEvent, error) {
+	body, err := ev.CloudEvent(cfg, at)
 	if err != nil {
 		return state.OutboxEvent{}, fmt.Errorf("stream: encode event %s (%s): %w", ev.ID, ev.Kind, err)
 	}

@@ -60,7 +60,7 @@ func testEvents(t *testing.T, cat, refit string, n int) []state.OutboxEvent {
 		p := fmt.Sprintf("P-%04d", i)
 		ev := alerts.NewEvent(cat, refit, alerts.KindMoved, p,
 			alerts.Moved{Category: cat, Refit: refit, Product: p, From: "S1", To: "S2", FromMembership: 0.2, ToMembership: 0.8})
-		oe, err := EncodeEvent(ev, alerts.DefaultSubjectPrefix, "/rivalmix/"+cat, at)
+		oe, err := EncodeEvent(ev, alerts.DefaultSubjectPrefix, alerts.DefaultCloudEventConfig(), at)
 		if err != nil {
 			t.Fatalf("EncodeEvent: %v", err)
 		}
@@ -221,8 +221,8 @@ func TestPublisherFlush(t *testing.T) {
 		if err := json.Unmarshal(m.Data, &ce); err != nil {
 			t.Fatalf("message %d body: %v", i+1, err)
 		}
-		if ce.SpecVersion != "1.0" || ce.ID != ev.ID || ce.Type != "rivalmix.segment.moved" ||
-			ce.Source != "/rivalmix/cereal" || ce.Subject != fmt.Sprintf("P-%04d", i) || len(ce.Data) == 0 {
+		if ce.SpecVersion != "1.0" || ce.ID != ev.ID || ce.Type != alerts.DefaultTypePrefix+".segment.moved" ||
+			ce.Source != "urn:rivalmix:cereal" || ce.Subject != fmt.Sprintf("P-%04d", i) || len(ce.Data) == 0 {
 			t.Errorf("message %d CloudEvent %+v", i+1, ce)
 		}
 	}

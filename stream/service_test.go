@@ -29,6 +29,9 @@ import (
 	"rivalmix/alerts"
 	"rivalmix/sequential/synth"
 	"rivalmix/state"
+	"rivalmix/stream/category"
+	"rivalmix/stream/input"
+	"rivalmix/stream/read"
 )
 
 // The service checks of this file and crash_test.go run the real thing:
@@ -137,7 +140,7 @@ type instance struct {
 	nc    *nats.Conn
 	js    jetstream.JetStream
 	reg   *prometheus.Registry
-	views *Views
+	views *read.Views
 	pub   *Publisher
 	svc   *Service
 
@@ -185,7 +188,7 @@ func startInstance(t testing.TB, url, path string, cfg ServiceConfig, lg *slog.L
 			info := c.CachedInfo()
 			return float64(info.NumPending + uint64(info.NumAckPending))
 		})
-	in.views = NewViews()
+	in.views = read.NewViews()
 	var pjs MsgPublisher = in.js
 	if opt.publisher != nil {
 		pjs = opt.publisher(pjs)
@@ -356,7 +359,7 @@ type inputMsg struct {
 func refitMessages(r int, cats ...*testCategory) []inputMsg {
 	var per [][]inputMsg
 	for _, c := range cats {
-		subj := DefaultInputPrefix + "." + c.name
+		subj := input.DefaultInputPrefix + "." + c.name
 		var ms []inputMsg
 		for _, p := range c.seq.Refit(r) {
 			ms = append(ms, inputMsg{subject: subj, data: p.MessageJSON(refitName(r))})
@@ -568,7 +571,7 @@ func TestServiceEndToEnd(t *testing.T) {
 	// forms of a refit reach the metrics.
 	teaCfg := cfg.Worker
 	teaCfg.Particles.KeepESS = 0.5
-	cfg.PerCategory = map[string]WorkerConfig{tea.name: teaCfg}
+	cfg.PerCategory = map[string]category.WorkerConfig{tea.name: teaCfg}
 	publishInput(t, ctx, js, refitMessages(0, cereal, tea))
 	last := publishInput(t, ctx, js, refitMessages(1, cereal, tea))
 
@@ -616,7 +619,7 @@ func TestServiceEndToEnd(t *testing.T) {
 			if m.Header.Get(HeaderContentType) != alerts.CloudEventContentType {
 				t.Errorf("event on %s: content-type %q", m.Subject, m.Header.Get(HeaderContentType))
 			}
-			if want := alerts.Kind(kind).Type(); ce.Type != want {
+			if want := alerts.Kind(kind).Type(alerts.DefaultTypePrefix); ce.Type != want {
 				t.Errorf("event on %s has type %q, want %q", m.Subject, ce.Type, want)
 			}
 		}
@@ -645,7 +648,7 @@ func TestServiceEndToEnd(t *testing.T) {
 	t.Logf("%d events on %s: %v", len(msgs), cfg.Bus.OutputStream, kindCounts(t, msgs))
 
 	// The read API over a real HTTP server.
-	hs := httptest.NewServer(NewHTTPHandler(in.views, in.reg, in.svc.Ready, newTestLog(t)))
+	hs := httptest.NewServer(read.NewHTTPHandler(in.views, in.reg, in.svc.Ready, newTestLog(t)))
 	t.Cleanup(hs.Close)
 	get := func(path string) (int, string) {
 		t.Helper()
@@ -688,7 +691,7 @@ func TestServiceEndToEnd(t *testing.T) {
 			}
 		}
 	}
-	var segs SegmentsResponse
+	var segs read.SegmentsResponse
 	if code, body := get("/v1/categories/breakfast-cereal/segments"); code == 200 {
 		if err := json.Unmarshal([]byte(body), &segs); err != nil {
 			t.Fatalf("segments response: %v", err)
@@ -910,7 +913,7 @@ func TestServiceBadInput(t *testing.T) {
 	defer cancel()
 	e, js, cfg := newTestBus(t, ctx)
 	const cat = "breakfast-cereal"
-	subj := DefaultInputPrefix + "." + cat
+	subj := input.DefaultInputPrefix + "." + cat
 	oversized := `{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.5]}` + strings.Repeat(" ", cfg.Decode.MaxBytes)
 	cases := []struct {
 		name, subject, payload string
@@ -924,8 +927,13 @@ func TestServiceBadInput(t *testing.T) {
 		{"own elasticity positive", subj, `{"product":"P-2001","refit":"2026-W40","own":0.5,"cross":[{"id":"P-2002","value":1.2}]}`, `field "own": must be negative`},
 		{"own elasticity zero", subj, `{"product":"P-2001","refit":"2026-W40","own":0,"cross":[{"id":"P-2002","value":1.2}]}`, `field "own": must be negative`},
 		{"not JSON", subj, `{"product":"P-2001","refit":`, "message: not valid JSON"},
-		{"no category in the subject", DefaultInputPrefix + ".breakfast.cereal",
+		{"no category in the subject", input.DefaultInputPrefix + ".breakfast.cereal",
 			`{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.5]}`, `field "subject"`},
+		// The bare prefix: the input stream takes it, so the message is
+		// kept and rejected with its reason instead of refused at publish.
+		{"bare input subject", input.DefaultInputPrefix,
+			`{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.5]}`,
+			`field "subject": "rivalmix.in" names no category; publish each category's messages to rivalmix.in.<category>`},
 	}
 	valid := func(id string) inputMsg {
 		return inputMsg{subject: subj, data: fmt.Appendf(nil, `{"product":%q,"refit":"2026-W40","competitors":10,"relative":[0.8,0.3]}`, id)}
@@ -1051,7 +1059,7 @@ func TestServiceRejectRetry(t *testing.T) {
 		t.Fatalf("DeleteStream: %v", err)
 	}
 	const cat = "breakfast-cereal"
-	subj := DefaultInputPrefix + "." + cat
+	subj := input.DefaultInputPrefix + "." + cat
 	bad := `{"product":"P-2002","refit":"2026-W40","competitors":2,"relative":[0.5,0.4,0.3]}`
 	last := publishInput(t, ctx, js, []inputMsg{
 		{subject: subj, data: []byte(`{"product":"P-2001","refit":"2026-W40","competitors":10,"relative":[0.8,0.3]}`)},

@@ -2,15 +2,17 @@ package main
 
 import (
 	"bytes"
+	"errors"
 	"flag"
 	"fmt"
+	"io"
 	"os"
 	"strings"
 
 	"go.yaml.in/yaml/v3"
 
 	"rivalmix/sequential"
-	"rivalmix/stream"
+	"rivalmix/stream/category"
 )
 
 // envPrefix names the environment variables that stand in for flags:
@@ -34,7 +36,8 @@ func applyEnv(fs *flag.FlagSet) error {
 		}
 		if v, ok := os.LookupEnv(envName(f.Name)); ok {
 			if e := fs.Set(f.Name, v); e != nil {
-				err = fmt.Errorf("%s=%q: %w", envName(f.Name), v, e)
+				err = &usageError{cmd: fs.Name(), err: fmt.Errorf("environment variable %s=%q (it sets --%s): %w",
+					envName(f.Name), v, f.Name, e)}
 			}
 		}
 	})
@@ -87,7 +90,7 @@ type settingsFile struct {
 }
 
 // apply overlays s on w.
-func (s modelSettings) apply(w stream.WorkerConfig) (stream.WorkerConfig, error) {
+func (s modelSettings) apply(w category.WorkerConfig) (category.WorkerConfig, error) {
 	if s.Particles != nil {
 		w.Particles.Particles = *s.Particles
 	}
@@ -141,7 +144,7 @@ func (s modelSettings) apply(w stream.WorkerConfig) (stream.WorkerConfig, error)
 
 // loadSettings reads the YAML settings file (strict: unknown keys are
 // errors) and returns the default worker settings and per-category ones.
-func loadSettings(path string, base stream.WorkerConfig) (stream.WorkerConfig, map[string]stream.WorkerConfig, error) {
+func loadSettings(path string, base category.WorkerConfig) (category.WorkerConfig, map[string]category.WorkerConfig, error) {
 	if path == "" {
 		return base, nil, nil
 	}
@@ -149,17 +152,24 @@ func loadSettings(path string, base stream.WorkerConfig) (stream.WorkerConfig, m
 	if err != nil {
 		return base, nil, fmt.Errorf("config: %w", err)
 	}
+	var doc yaml.Node
+	if err := yaml.Unmarshal(raw, &doc); err != nil {
+		return base, nil, fmt.Errorf("config %s: not valid YAML: %w", path, err)
+	}
+	if err := checkSettingsFile(&doc); err != nil {
+		return base, nil, fmt.Errorf("config %s %w", path, err)
+	}
 	var f settingsFile
 	dec := yaml.NewDecoder(bytes.NewReader(raw))
 	dec.KnownFields(true)
-	if err := dec.Decode(&f); err != nil {
+	if err := dec.Decode(&f); err != nil && !errors.Is(err, io.EOF) {
 		return base, nil, fmt.Errorf("config %s: %w", path, err)
 	}
 	def, err := f.Defaults.apply(base)
 	if err != nil {
 		return base, nil, fmt.Errorf("config %s: defaults: %w", path, err)
 	}
-	per := map[string]stream.WorkerConfig{}
+	per := map[string]category.WorkerConfig{}
 	for cat, s := range f.Categories {
 		w, err := s.apply(def)
 		if err != nil {

@@ -15,7 +15,7 @@ import (
 	"github.com/nats-io/nats.go/jetstream"
 
 	"rivalmix/alerts"
-	"rivalmix/stream"
+	"rivalmix/stream/read"
 )
 
 // runDemo runs everything in one process with no setup: an embedded NATS
@@ -40,14 +40,14 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fs.Lookup("log-level").DefValue = "warn"
 	f.logLevel = "warn"
 	envUsage(fs)
-	if err := fs.Parse(args); err != nil {
+	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if err := applyEnv(fs); err != nil {
 		return err
 	}
 	if err := s.validate(); err != nil {
-		return fmt.Errorf("demo: %w", err)
+		return usageErrorf(fs, "%v", err)
 	}
 	dir, err := os.MkdirTemp("", "rivalmix-demo-")
 	if err != nil {
@@ -187,7 +187,7 @@ func waitSummary(ctx context.Context, c jetstream.Consumer, refit string, kinds 
 	return demoSummary{}, nil, fmt.Errorf("no summary event for refit %s within %v", refit, timeout)
 }
 
-func printDemoSummary(w io.Writer, views *stream.Views, category string, kinds map[string]int, moves []string) {
+func printDemoSummary(w io.Writer, views *read.Views, category string, kinds map[string]int, moves []string) {
 	fmt.Fprintf(w, "\nsegments of %s after the last refit:\n", category)
 	segs, _ := views.Segments(category)
 	tw := tabwriter.NewWriter(w, 0, 0, 2, ' ', tabwriter.AlignRight)
@@ -203,5 +203,5 @@ func printDemoSummary(w io.Writer, views *stream.Views, category string, kinds m
 		n := min(len(moves), 10)
 		fmt.Fprintf(w, "moves (first %d of %d): %s\n", n, len(moves), strings.Join(moves[:n], ", "))
 	}
-	fmt.Fprintln(w, "\nThese are statistical signals for analysts, not pricing advice.")
+	fmt.Fprintln(w, "\n"+alerts.Caution)
 }

@@ -16,13 +16,15 @@ import (
 	"text/tabwriter"
 	"time"
 
+	"rivalmix/alerts"
 	"rivalmix/sequential"
-	"rivalmix/stream"
+	"rivalmix/stream/input"
 )
 
 // fitConfig holds the flags of `rivalmix fit`.
 type fitConfig struct {
 	in, out, category string
+	rejected          string
 	seed              uint64
 	sweeps, burn      int
 	thin              int
@@ -52,18 +54,18 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	fs.Float64Var(&c.threshold, "threshold", 0.25, "relative cross-elasticity t for the missed-competitor probability P(next value > t)")
 	fs.BoolVar(&c.similarity, "similarity", false, "also write the N x N co-segment probability matrix")
 	fs.BoolVar(&c.strict, "strict", false, "abort on the first bad line, and reject non-positive entries instead of dropping them")
-	fs.IntVar(&c.competitors, "competitors", 10, "candidate competitors L for messages that do not say")
-	fs.BoolVar(&c.quiet, "quiet", false, "no progress lines")
+	fs.IntVar(&c.competitors, "competitors", input.DefaultCompetitors, "candidate competitors L for messages that do not say")
+	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
+	fs.StringVar(&c.rejected, "rejected", "", "also write rejected lines with their reasons to this file (one JSON object per line)")
 	fs.StringVar(&c.method, "method", "gibbs", "gibbs (batch sampler) or particles (the sequential updater fed one product at a time)")
 	fs.IntVar(&c.particles, "particles", sequential.DefaultParticleConfig().Particles, "particles, with --method particles")
 	fs.IntVar(&c.settleEvery, "settle-every", 256, "with --method particles: settle (resample and rejuvenate) after this many products")
 	fs.IntVar(&c.finalSweeps, "final-sweeps", 10, "with --method particles: rejuvenation sweeps over all products at the end")
-	if err := fs.Parse(args); err != nil {
+	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if c.in == "" || c.out == "" {
-		fs.Usage()
-		return errors.New("fit: --in and --out are required")
+		return usageErrorf(fs, "--in and --out are required")
 	}
 	if c.category == "" {
 		c.category = strings.TrimSuffix(filepath.Base(c.in), filepath.Ext(c.in))
@@ -76,8 +78,28 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	if !(c.threshold > 0) || math.IsInf(c.threshold, 0) {
 		return fmt.Errorf("fit: --threshold %v, want finite and > 0", c.threshold)
 	}
+	if c.method != "gibbs" && c.method != "particles" {
+		return usageErrorf(fs, "--method %q, want gibbs or particles", c.method)
+	}
+	if err := input.ValidateCompetitors("fit: --competitors", c.competitors); err != nil {
+		return err
+	}
+	// The output is written after a fit that may take minutes: find out
+	// now whether it can be.
+	if err := checkWritable(c.out); err != nil {
+		return fmt.Errorf("fit: --out: %w", err)
+	}
+	progress := stderr
+	if c.quiet {
+		progress = io.Discard
+	}
+	rej, err := openRejectLog(c.rejected, progress)
+	if err != nil {
+		return fmt.Errorf("fit: --rejected: %w", err)
+	}
+	defer rej.file.Close()
 
-	cat, err := readCategory(c.in, c.competitors, c.strict, stderr)
+	cat, err := readCategory(c.in, c.competitors, c.strict, rej)
 	if err != nil {
 		return fmt.Errorf("fit: %w", err)
 	}
@@ -86,13 +108,10 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	}
 
 	var draws []sequential.Draw
-	switch c.method {
-	case "gibbs":
-		draws, err = fitGibbs(ctx, c, gc, cat, stderr)
-	case "particles":
-		draws, err = fitParticles(ctx, c, cat, stderr)
-	default:
-		return fmt.Errorf("fit: --method %q, want gibbs or particles", c.method)
+	if c.method == "gibbs" {
+		draws, err = fitGibbs(ctx, c, gc, cat, progress)
+	} else {
+		draws, err = fitParticles(ctx, c, cat, progress)
 	}
 	if err != nil {
 		return err
@@ -109,9 +128,12 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	if err := writeJSON(c.out, post); err != nil {
 		return fmt.Errorf("fit: %w", err)
 	}
+	if c.quiet {
+		return nil
+	}
 	printSegmentTable(stdout, cat.data, sum)
-	fmt.Fprintf(stdout, "\n%d products, %d lines skipped, %d non-positive entries dropped; %d draws (%s); expected Binder loss %.1f; wrote %s\n",
-		len(cat.ids), cat.badLines, cat.dropped, len(draws), c.method, sum.Binder, c.out)
+	fmt.Fprintf(stdout, "\n%d products, %d lines skipped, %d non-positive entries dropped; %d draws (%s); expected Binder loss %.1f; wrote %s\n\n%s\n",
+		len(cat.ids), rej.n, cat.dropped, len(draws), c.method, sum.Binder, c.out, alerts.Caution)
 	return nil
 }
 
@@ -124,7 +146,7 @@ func fitGibbs(ctx context.Context, c fitConfig, gc sequential.GibbsConfig, cat *
 	start := time.Now()
 	last := start
 	progress := func(sweep, total, segments int) {
-		if c.quiet || ctx.Err() != nil {
+		if ctx.Err() != nil {
 			return
 		}
 		if now := time.Now(); sweep == total || now.Sub(last) >= time.Second {
@@ -163,71 +185,59 @@ func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io
 		}
 		if (i+1)%c.settleEvery == 0 {
 			ps.Settle()
-			if !c.quiet {
-				fmt.Fprintf(stderr, "updating: %d/%d products, ESS %.0f of %d, %d ancestors, %.1fs\n",
-					i+1, len(cat.ids), ps.ESS(), ps.NumParticles(), ps.Diversity(), time.Since(start).Seconds())
-			}
+			fmt.Fprintf(stderr, "updating: %d/%d products, ESS %.0f of %d, %d ancestors, %.1fs\n",
+				i+1, len(cat.ids), ps.ESS(), ps.NumParticles(), ps.Diversity(), time.Since(start).Seconds())
 		}
 	}
 	ps.SettleRefit()
-	if !c.quiet {
-		fmt.Fprintf(stderr, "updating: done, ESS %.0f of %d, %.1fs\n", ps.ESS(), ps.NumParticles(), time.Since(start).Seconds())
-	}
+	fmt.Fprintf(stderr, "updating: done, ESS %.0f of %d, %.1fs\n", ps.ESS(), ps.NumParticles(), time.Since(start).Seconds())
 	return ps.Draws(), nil
 }
 
 // categoryData is one category's latest datum per product, in order of
 // first appearance.
 type categoryData struct {
-	ids      []string
-	data     []*sequential.Datum
-	badLines int
-	dropped  int
+	ids     []string
+	data    []*sequential.Datum
+	dropped int
 }
 
 // readCategory decodes a JSON-lines file. A later message for the same
 // product replaces the earlier one (a newer refit); a withdrawn product is
-// removed. Bad lines are reported on stderr and counted, or abort in strict
-// mode.
-func readCategory(path string, defaultL int, strict bool, stderr io.Writer) (*categoryData, error) {
+// removed. Bad lines go to rej, or abort in strict mode.
+func readCategory(path string, defaultL int, strict bool, rej *rejectLog) (*categoryData, error) {
 	f, err := os.Open(path)
 	if err != nil {
 		return nil, err
 	}
 	defer f.Close()
-	opt := stream.DefaultDecodeOptions()
+	opt := input.DefaultDecodeOptions()
 	opt.DefaultCompetitors = defaultL
 	opt.Strict = strict
-	latest := map[string]stream.Message{}
+	latest := map[string]input.Message{}
 	var order []string
 	cat := &categoryData{}
-	err = stream.DecodeLines(f, opt, func(line int, m stream.Message) error {
+	err = input.DecodeLines(f, opt, func(line int, m input.Message) error {
 		switch m.Kind {
-		case stream.KindDatum:
+		case input.KindDatum:
 			if _, ok := latest[m.Product]; !ok {
 				order = append(order, m.Product)
 			}
 			latest[m.Product] = m
-		case stream.KindWithdrawn:
+		case input.KindWithdrawn:
 			delete(latest, m.Product)
 		}
 		return nil
-	}, func(le *stream.LineError) error {
-		cat.badLines++
+	}, func(le *input.LineError) error {
 		if strict {
 			return fmt.Errorf("%s: %w", path, le)
 		}
-		if cat.badLines <= 10 {
-			fmt.Fprintf(stderr, "skipped %s: %v\n", path, le)
-		}
-		return nil
+		return rej.add(le.Line, le.Text, le.Err)
 	})
 	if err != nil {
 		return nil, err
 	}
-	if cat.badLines > 10 {
-		fmt.Fprintf(stderr, "skipped %d bad lines in all\n", cat.badLines)
-	}
+	rej.close()
 	for _, id := range order {
 		m, ok := latest[id]
 		if !ok {
@@ -264,8 +274,9 @@ type nextValue struct {
 	Hi        float64 `json:"hi"`
 }
 
-// segmentLabel names point segment c (0-based) for people: S1, S2, ...
-func segmentLabel(c int) string { return "S" + strconv.Itoa(c+1) }
+// segmentLabel names point segment c (0-based) as a category's first
+// refit would: S1, S2, ...
+func segmentLabel(c int) string { return alerts.SegmentID(c + 1) }
 
 func newPosteriorFile(category string, ids []string, data []*sequential.Datum, draws []sequential.Draw, sum sequential.Summary, similarity bool) posteriorFile {
 	p := posteriorFile{
@@ -289,6 +300,22 @@ func newPosteriorFile(category string, ids []string, data []*sequential.Datum, d
 		p.Similarity = sequential.SimilarityMatrix(draws)
 	}
 	return p
+}
+
+// checkWritable reports, before any work, an output path that cannot be
+// written: a missing directory, a directory in its place, no permission.
+// It leaves nothing behind.
+func checkWritable(path string) error {
+	if fi, err := os.Stat(path); err == nil && fi.IsDir() {
+		return fmt.Errorf("%s is a directory", path)
+	}
+	f, err := os.CreateTemp(filepath.Dir(path), "."+filepath.Base(path)+".check-*")
+	if err != nil {
+		return fmt.Errorf("cannot write %s: %w", path, err)
+	}
+	name := f.Name()
+	f.Close()
+	return os.Remove(name)
 }
 
 func writeJSON(path string, v any) error {

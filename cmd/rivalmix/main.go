@@ -14,6 +14,7 @@
 //	replay    run the service's update path over a file of refits and write the events
 //	simulate  write or publish a fictional category's weekly refit results
 //	inspect   print what a state file holds
+//	version   print the version this binary was built from
 //
 // Run "rivalmix <command> -h" for the flags of each command.
 package main
@@ -44,37 +45,53 @@ func commands() []command {
 		{"replay", "run the service's update path over a file of refits and write the events", runReplay},
 		{"simulate", "write or publish a fictional category's weekly refit results", runSimulate},
 		{"inspect", "print what a state file holds", runInspect},
+		{"version", "print the version this binary was built from", runVersion},
 	}
 }
 
 func main() {
 	ctx, stop := signal.NotifyContext(context.Background(), os.Interrupt, syscall.SIGTERM)
-	err := dispatch(ctx, os.Args[1:], os.Stdout, os.Stderr)
+	code := run(ctx, os.Args[1:], os.Stdout, os.Stderr)
 	stop()
+	os.Exit(code)
+}
+
+// run runs one command line and returns the exit status: 0, 1 for a
+// failure, 2 for a command line that cannot be run as given. An error is
+// printed first, then, for a mistake in the command line, one line
+// pointing to the help.
+func run(ctx context.Context, args []string, stdout, stderr io.Writer) int {
+	err := dispatch(ctx, args, stdout, stderr)
+	var ue *usageError
 	switch {
-	case err == nil:
-	case errors.Is(err, flag.ErrHelp):
-	default:
-		fmt.Fprintln(os.Stderr, "rivalmix:", err)
-		os.Exit(1)
+	case err == nil, errors.Is(err, flag.ErrHelp):
+		return 0
+	case errors.As(err, &ue):
+		fmt.Fprintf(stderr, "rivalmix: %v\n%s\n", err, ue.hint())
+		return 2
 	}
+	fmt.Fprintln(stderr, "rivalmix:", err)
+	return 1
 }
 
 func dispatch(ctx context.Context, args []string, stdout, stderr io.Writer) error {
-	if len(args) == 0 || args[0] == "-h" || args[0] == "--help" || args[0] == "help" {
+	if len(args) == 0 {
 		usage(stderr)
-		if len(args) == 0 {
-			return errors.New("no command given")
-		}
-		return flag.ErrHelp
+		return errors.New("no command given")
+	}
+	switch args[0] {
+	case "-h", "--help", "-help", "help":
+		usage(stdout)
+		return nil
+	case "--version", "-version", "-v":
+		return runVersion(ctx, args[1:], stdout, stderr)
 	}
 	for _, c := range commands() {
 		if c.name == args[0] {
 			return c.run(ctx, args[1:], stdout, stderr)
 		}
 	}
-	usage(stderr)
-	return fmt.Errorf("unknown command %q", args[0])
+	return &usageError{err: fmt.Errorf("unknown command %q", args[0])}
 }
 
 func usage(w io.Writer) {
@@ -83,17 +100,5 @@ func usage(w io.Writer) {
 	for _, c := range commands() {
 		fmt.Fprintf(w, "  %-9s %s\n", c.name, c.summary)
 	}
-	fmt.Fprintln(w, "\nRun 'rivalmix <command> -h' for a command's flags.")
-}
-
-// newFlagSet returns a flag set that reports errors instead of exiting and
-// prints a usage line, the command's summary and its flags with defaults.
-func newFlagSet(name, synopsis, summary string, stderr io.Writer) *flag.FlagSet {
-	fs := flag.NewFlagSet(name, flag.ContinueOnError)
-	fs.SetOutput(stderr)
-	fs.Usage = func() {
-		fmt.Fprintf(stderr, "usage: rivalmix %s %s\n\n%s\n\nflags:\n", name, synopsis, summary)
-		fs.PrintDefaults()
-	}
-	return fs
+	fmt.Fprintln(w, "\nRun 'rivalmix <command> -h' for a command's flags; 'rivalmix --version' for the version.")
 }

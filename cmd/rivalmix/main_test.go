@@ -11,9 +11,11 @@ import (
 	"sort"
 	"strings"
 	"testing"
+
+	"rivalmix/alerts"
 )
 
-func run(t *testing.T, args ...string) (string, string, error) {
+func execute(t *testing.T, args ...string) (string, string, error) {
 	t.Helper()
 	var out, errb bytes.Buffer
 	err := dispatch(context.Background(), args, &out, &errb)
@@ -29,13 +31,13 @@ func TestFitWritesContract(t *testing.T) {
 		t.Run(method, func(t *testing.T) {
 			t.Parallel()
 			out := filepath.Join(t.TempDir(), "p.json")
-			args := []string{"fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", out, "--quiet",
+			args := []string{"fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", out,
 				"--method", method, "--sweeps", "60", "--burn", "20", "--thin", "2", "--particles", "32", "--final-sweeps", "2", "--similarity"}
-			stdout, _, err := run(t, args...)
+			stdout, _, err := execute(t, args...)
 			if err != nil {
 				t.Fatal(err)
 			}
-			if !strings.Contains(stdout, "segment") || !strings.Contains(stdout, "300 products") {
+			if !strings.Contains(stdout, "segment") || !strings.Contains(stdout, "300 products") || !strings.Contains(stdout, "not pricing advice") {
 				t.Errorf("table missing from stdout:\n%s", stdout)
 			}
 			raw, err := os.ReadFile(out)
@@ -92,7 +94,7 @@ func TestFitBadLines(t *testing.T) {
 	if err := os.WriteFile(in, []byte(body), 0o644); err != nil {
 		t.Fatal(err)
 	}
-	stdout, stderr, err := run(t, "fit", "--in", in, "--out", filepath.Join(dir, "p.json"), "--quiet", "--sweeps", "20", "--burn", "5", "--thin", "1")
+	stdout, stderr, err := execute(t, "fit", "--in", in, "--out", filepath.Join(dir, "p.json"), "--sweeps", "20", "--burn", "5", "--thin", "1")
 	if err != nil {
 		t.Fatal(err)
 	}
@@ -102,7 +104,7 @@ func TestFitBadLines(t *testing.T) {
 	if !strings.Contains(stdout, "2 products, 2 lines skipped") {
 		t.Errorf("summary line wrong:\n%s", stdout)
 	}
-	_, _, err = run(t, "fit", "--in", in, "--out", filepath.Join(dir, "q.json"), "--quiet", "--strict")
+	_, _, err = execute(t, "fit", "--in", in, "--out", filepath.Join(dir, "q.json"), "--quiet", "--strict")
 	if err == nil || !strings.Contains(err.Error(), "line 2") {
 		t.Errorf("--strict: err = %v, want the first bad line", err)
 	}
@@ -114,14 +116,15 @@ func TestReplayDeterministic(t *testing.T) {
 	t.Parallel()
 	dir := t.TempDir()
 	in := filepath.Join(dir, "refits.jsonl")
-	if _, _, err := run(t, "simulate", "--out", in, "--products", "40", "--refits", "3", "--sim-seed", "5"); err != nil {
+	if _, _, err := execute(t, "simulate", "--out", in, "--products", "40", "--refits", "3", "--sim-seed", "5"); err != nil {
 		t.Fatal(err)
 	}
 	var files []string
 	var table string
 	for k := 0; k < 2; k++ {
 		out := filepath.Join(dir, "events"+string(rune('a'+k))+".jsonl")
-		stdout, _, err := run(t, "replay", "--in", in, "--out", out, "--particles", "16", "--quiet", "--seed", "3")
+		stdout, _, err := execute(t, "replay", "--in", in, "--out", out, "--particles", "16", "--seed", "3",
+			"--category", "breakfast-cereal", "--time", "2026-11-30T06:00:00Z")
 		if err != nil {
 			t.Fatal(err)
 		}
@@ -152,12 +155,12 @@ func TestReplayDeterministic(t *testing.T) {
 func TestHelpAndUnknown(t *testing.T) {
 	t.Parallel()
 	for _, c := range commands() {
-		_, stderr, err := run(t, c.name, "-h")
+		_, stderr, err := execute(t, c.name, "-h")
 		if !errors.Is(err, flag.ErrHelp) || !strings.Contains(stderr, "usage: rivalmix "+c.name) {
 			t.Errorf("%s -h: err %v, stderr %q", c.name, err, stderr)
 		}
 	}
-	if _, _, err := run(t, "frobnicate"); err == nil {
+	if _, _, err := execute(t, "frobnicate"); err == nil {
 		t.Error("unknown command accepted")
 	}
 }
@@ -169,7 +172,8 @@ func TestSettingsFile(t *testing.T) {
 	dir := t.TempDir()
 	good := filepath.Join(dir, "good.yaml")
 	os.WriteFile(good, []byte("defaults:\n  particles: 64\ncategories:\n  cereal:\n    threshold: 0.3\n    resampler: residual\n    keep_ess: 0.8\n    batch_sweeps: 0\n    random_share: 1\n"), 0o644)
-	f := serviceFlags{configFile: good, particles: 256, batch: 256, fetch: 256, fetchWait: 1, seed: 1, replicas: 1}
+	f := serviceFlags{configFile: good, particles: 256, batch: 256, fetch: 256, fetchWait: 1, seed: 1, replicas: 1,
+		events: alerts.DefaultCloudEventConfig()}
 	sc, err := f.serviceConfig()
 	if err != nil {
 		t.Fatal(err)

@@ -10,15 +10,14 @@ import (
 	"io"
 	"math"
 	"os"
-	"path/filepath"
 	"slices"
-	"strings"
 	"text/tabwriter"
 	"time"
 
 	"rivalmix/alerts"
 	"rivalmix/sequential"
-	"rivalmix/stream"
+	"rivalmix/stream/category"
+	"rivalmix/stream/input"
 )
 
 // replayConfig holds the flags of `rivalmix replay`.
@@ -28,81 +27,102 @@ type replayConfig struct {
 	particles, batch            int
 	competitors                 int
 	strict, quiet               bool
+	at                          string
+	events                      alerts.CloudEventConfig
 }
 
 func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) error {
 	fs := newFlagSet("replay", "--in refits.jsonl --out events.jsonl [flags]",
 		"Runs the service's update path over a file of input messages (refit results with refit-complete\n"+
 			"control lines) and writes the events it would publish, one CloudEvents JSON object per line.\n"+
-			"Lines are bare input messages (category from --category or the file name) or envelopes\n"+
-			"{\"subject\":\"rivalmix.in.<category>\",\"data\":{...}} as captured from the bus.", stderr)
+			"Lines are envelopes {\"subject\":\"rivalmix.in.<category>\",\"data\":{...},\"time\":\"RFC 3339\"}\n"+
+			"as captured from the bus (\"time\" optional), or bare input messages of the category --category names.\n"+
+			"An event's time is its refit-complete line's \"time\", or else --time.", stderr)
 	var c replayConfig
-	wd := stream.DefaultWorkerConfig()
+	wd := category.DefaultWorkerConfig()
 	fs.StringVar(&c.in, "in", "", "input file, one JSON message per line (required)")
 	fs.StringVar(&c.out, "out", "", "events file to write (required)")
-	fs.StringVar(&c.category, "category", "", "only this category (default: every category; bare lines belong to the input file's name)")
+	fs.StringVar(&c.category, "category", "", "category of bare lines; envelope lines of other categories are skipped (default: every category, and bare lines are rejected)")
 	fs.StringVar(&c.rejected, "rejected", "", "also write rejected lines with their reasons to this file")
 	fs.Uint64Var(&c.seed, "seed", wd.Seed, "random seed; the same seed and input give a byte-identical events file")
 	fs.IntVar(&c.particles, "particles", wd.Particles.Particles, "particles per category")
 	fs.IntVar(&c.batch, "batch", wd.BatchSize, "changed products per micro-batch (a settle after each)")
-	fs.IntVar(&c.competitors, "competitors", 10, "candidate competitors L for messages that do not say")
+	fs.IntVar(&c.competitors, "competitors", wd.Competitors, "candidate competitors L for messages that do not say")
 	fs.BoolVar(&c.strict, "strict", false, "reject non-positive entries instead of dropping them")
-	fs.BoolVar(&c.quiet, "quiet", false, "no progress lines")
-	if err := fs.Parse(args); err != nil {
+	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
+	fs.StringVar(&c.at, "time", "", "event time (RFC 3339) of refits whose refit-complete line carries none (default: when the replay starts)")
+	eventFlags(fs, &c.events)
+	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if c.in == "" || c.out == "" {
-		fs.Usage()
-		return errors.New("replay: --in and --out are required")
-	}
-	if c.batch < 1 {
-		return errors.New("replay: --batch must be >= 1")
+		return usageErrorf(fs, "--in and --out are required")
 	}
 	wd.Seed = c.seed
 	wd.BatchSize = c.batch
 	wd.Particles.Particles = c.particles
-	if err := wd.Particles.Validate(); err != nil {
+	wd.Competitors = c.competitors
+	if err := wd.Validate(); err != nil {
 		return fmt.Errorf("replay: %w", err)
+	}
+	if err := c.events.Validate(); err != nil {
+		return fmt.Errorf("replay: --event-source or --event-type-prefix: %w", err)
+	}
+	at := time.Now().UTC()
+	if c.at != "" {
+		t, err := time.Parse(time.RFC3339Nano, c.at)
+		if err != nil {
+			return fmt.Errorf("replay: --time %q: want an RFC 3339 time such as 2026-11-30T06:00:00Z", c.at)
+		}
+		at = t
+	}
+	if c.category != "" {
+		if _, err := input.CategoryFromSubject(input.DefaultInputPrefix+"."+c.category, ""); err != nil {
+			return fmt.Errorf("replay: --category %q: %w", c.category, err)
+		}
 	}
 	in, err := os.Open(c.in)
 	if err != nil {
-		return fmt.Errorf("replay: %w", err)
+		return fmt.Errorf("replay: --in: %w", err)
 	}
 	defer in.Close()
 	out, err := os.Create(c.out)
 	if err != nil {
-		return fmt.Errorf("replay: %w", err)
+		return fmt.Errorf("replay: --out: %w", err)
 	}
 	defer out.Close()
-	var rej io.Writer = io.Discard
-	if c.rejected != "" {
-		f, err := os.Create(c.rejected)
-		if err != nil {
-			return fmt.Errorf("replay: %w", err)
-		}
-		defer f.Close()
-		rej = f
+	progress := stderr
+	if c.quiet {
+		progress = io.Discard
 	}
+	rej, err := openRejectLog(c.rejected, progress)
+	if err != nil {
+		return fmt.Errorf("replay: --rejected: %w", err)
+	}
+	defer rej.file.Close()
 	r := &replayer{cfg: c, wcfg: wd, workers: map[string]*replayCategory{}, out: bufio.NewWriter(out),
-		rejected: rej, stderr: stderr, defaultCat: strings.TrimSuffix(filepath.Base(c.in), filepath.Ext(c.in))}
-	r.opt = stream.DefaultDecodeOptions()
-	r.opt.DefaultCompetitors = c.competitors
+		rejected: rej, stderr: progress, at: at}
+	r.opt = wd.DecodeOptions(input.DefaultDecodeOptions())
 	r.opt.Strict = c.strict
 	if err := r.run(ctx, in); err != nil {
 		return fmt.Errorf("replay: %w", err)
 	}
+	rej.close()
 	if err := r.out.Flush(); err != nil {
 		return fmt.Errorf("replay: write %s: %w", c.out, err)
 	}
+	if c.quiet {
+		return nil
+	}
 	r.printTable(stdout)
-	fmt.Fprintf(stdout, "\n%d messages applied, %d duplicates, %d rejected, %d events written to %s\n",
-		r.applied, r.duplicates, r.rejectedN, r.events, c.out)
+	fmt.Fprintf(stdout, "\n%d messages applied, %d duplicates, %d rejected, %d events written to %s\n\n%s\n",
+		r.applied, r.duplicates, rej.n, r.events, c.out, alerts.Caution)
 	return nil
 }
 
 // replayCategory is one category's worker and its per-refit table rows.
 type replayCategory struct {
-	w    *stream.Worker
+	w    *category.Worker
 	prev map[string]int
 	rows []replayRow
 }
@@ -120,34 +140,47 @@ type replayRow struct {
 }
 
 type replayer struct {
-	cfg        replayConfig
-	wcfg       stream.WorkerConfig
-	opt        stream.DecodeOptions
-	workers    map[string]*replayCategory
-	out        *bufio.Writer
-	rejected   io.Writer
-	stderr     io.Writer
-	defaultCat string
+	cfg      replayConfig
+	wcfg     category.WorkerConfig
+	opt      input.DecodeOptions
+	workers  map[string]*replayCategory
+	out      *bufio.Writer
+	rejected *rejectLog
+	stderr   io.Writer // progress; io.Discard when quiet
+	at       time.Time // event time of refits whose complete line has none
 
-	applied, duplicates, rejectedN, events int
+	applied, duplicates, events int
 }
 
-// envelope is a captured bus message: subject and payload.
+// envelope is a captured bus message: subject, payload and, optionally,
+// the time the stream stored it.
 type envelope struct {
 	Subject string          `json:"subject"`
 	Data    json.RawMessage `json:"data"`
+	Time    *time.Time      `json:"time"`
 }
 
-// split returns the category and payload of one line.
-func (r *replayer) split(line []byte) (string, []byte, error) {
+// errNoCategory is the reason for a bare line when --category is not set.
+var errNoCategory = errors.New(`no category: a bare input line needs --category, or write it as {"subject":"rivalmix.in.<category>","data":...}`)
+
+// split returns the category, payload and time (zero when not given) of
+// one line.
+func (r *replayer) split(line []byte) (string, []byte, time.Time, error) {
 	var env envelope
 	dec := json.NewDecoder(bytes.NewReader(line))
 	dec.DisallowUnknownFields()
 	if err := dec.Decode(&env); err == nil && env.Subject != "" && len(env.Data) > 0 {
-		cat, err := stream.CategoryFromSubject(env.Subject, stream.DefaultInputPrefix)
-		return cat, env.Data, err
+		cat, err := input.CategoryFromSubject(env.Subject, input.DefaultInputPrefix)
+		var at time.Time
+		if env.Time != nil {
+			at = *env.Time
+		}
+		return cat, env.Data, at, err
 	}
-	return r.defaultCat, line, nil
+	if r.cfg.category == "" {
+		return "", nil, time.Time{}, errNoCategory
+	}
+	return r.cfg.category, line, time.Time{}, nil
 }
 
 func (r *replayer) run(ctx context.Context, in io.Reader) error {
@@ -164,38 +197,47 @@ func (r *replayer) run(ctx context.Context, in io.Reader) error {
 		if len(raw) == 0 || raw[0] == '#' {
 			continue
 		}
-		cat, payload, err := r.split(raw)
+		cat, payload, at, err := r.split(raw)
 		if err != nil {
-			r.reject(line, raw, err)
+			if err := r.reject(line, raw, err); err != nil {
+				return err
+			}
 			continue
 		}
 		if r.cfg.category != "" && cat != r.cfg.category {
 			continue
 		}
-		m, err := stream.Decode(payload, r.opt)
+		m, err := input.Decode(payload, r.opt)
 		if err != nil {
-			r.reject(line, raw, err)
+			if err := r.reject(line, raw, err); err != nil {
+				return err
+			}
 			continue
 		}
 		rc, err := r.worker(cat)
 		if err != nil {
 			return err
 		}
-		if m.Kind == stream.KindRefitComplete {
-			if err := r.complete(rc, m.Refit, start); err != nil {
+		if m.Kind == input.KindRefitComplete {
+			if at.IsZero() {
+				at = r.at
+			}
+			if err := r.complete(rc, m.Refit, at, start); err != nil {
 				return err
 			}
 			continue
 		}
 		outcome, err := rc.w.Apply(m, uint64(line))
 		if err != nil {
-			r.reject(line, raw, err)
+			if err := r.reject(line, raw, err); err != nil {
+				return err
+			}
 			continue
 		}
 		switch outcome {
-		case stream.AppliedDuplicate:
+		case category.AppliedDuplicate:
 			r.duplicates++
-		case stream.AppliedAdd, stream.AppliedReplace, stream.AppliedRemove:
+		case category.AppliedAdd, category.AppliedReplace, category.AppliedRemove:
 			r.applied++
 		}
 	}
@@ -209,7 +251,7 @@ func (r *replayer) worker(cat string) (*replayCategory, error) {
 	if rc, ok := r.workers[cat]; ok {
 		return rc, nil
 	}
-	w, err := stream.NewWorker(cat, r.wcfg)
+	w, err := category.NewWorker(cat, r.wcfg)
 	if err != nil {
 		return nil, err
 	}
@@ -218,31 +260,25 @@ func (r *replayer) worker(cat string) (*replayCategory, error) {
 	return rc, nil
 }
 
-func (r *replayer) reject(line int, raw []byte, err error) {
-	r.rejectedN++
-	if r.rejectedN <= 10 {
-		fmt.Fprintf(r.stderr, "rejected line %d: %v\n", line, err)
+func (r *replayer) reject(line int, raw []byte, reason error) error {
+	if err := r.rejected.add(line, raw, reason); err != nil {
+		return fmt.Errorf("write --rejected %s: %w", r.cfg.rejected, err)
 	}
-	rec, _ := json.Marshal(struct {
-		Line   int    `json:"line"`
-		Reason string `json:"reason"`
-		Raw    string `json:"raw"`
-	}{Line: line, Reason: err.Error(), Raw: string(raw)})
-	fmt.Fprintf(r.rejected, "%s\n", rec)
+	return nil
 }
 
-// complete ends a refit of one category and writes its events.
-func (r *replayer) complete(rc *replayCategory, refit string, start time.Time) error {
+// complete ends a refit of one category and writes its events with time
+// at.
+func (r *replayer) complete(rc *replayCategory, refit string, at, start time.Time) error {
 	rep, err := rc.w.CompleteRefit(refit)
 	if err != nil {
 		return err
 	}
-	source := "/rivalmix/" + rc.w.Category()
 	row := replayRow{category: rc.w.Category(), refit: refit, products: len(rep.Products),
 		segments: len(rep.Summary.Segments), ess: rep.ESS, particles: rc.w.Particles().NumParticles(),
 		diversity: rep.Diversity, surprise: rep.MeanSurprise, elapsed: time.Since(start)}
 	for _, ev := range rep.Events {
-		b, err := ev.CloudEvent(source, time.Time{})
+		b, err := ev.CloudEvent(r.cfg.events, at)
 		if err != nil {
 			return err
 		}
@@ -274,10 +310,8 @@ func (r *replayer) complete(rc *replayCategory, refit string, start time.Time) e
 	}
 	rc.prev = cur
 	rc.rows = append(rc.rows, row)
-	if !r.cfg.quiet {
-		fmt.Fprintf(r.stderr, "refit %s %s: %d products, %d segments, %d moves, %d alerts, ESS %.0f/%d, %.1fs\n",
-			row.category, refit, row.products, row.segments, row.moves, row.alerts, row.ess, row.particles, row.elapsed.Seconds())
-	}
+	fmt.Fprintf(r.stderr, "refit %s %s: %d products, %d segments, %d moves, %d alerts, ESS %.0f/%d, %.1fs\n",
+		row.category, refit, row.products, row.segments, row.moves, row.alerts, row.ess, row.particles, row.elapsed.Seconds())
 	return nil
 }
 

@@ -20,14 +20,17 @@ import (
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/collectors"
 
+	"rivalmix/alerts"
 	"rivalmix/state"
 	"rivalmix/stream"
+	"rivalmix/stream/read"
 )
 
 // serviceFlags are the flags shared by serve and demo.
 type serviceFlags struct {
 	natsURL, listen, stateFile, httpAddr, configFile string
 	conn                                             stream.ConnectOptions
+	events                                           alerts.CloudEventConfig
 	seed                                             uint64
 	particles, batch, fetch                          int
 	fetchWait, quiet, rejectRetry                    time.Duration
@@ -42,14 +45,8 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.StringVar(&f.stateFile, "state", defaultState, "bbolt state file of this worker")
 	fs.StringVar(&f.httpAddr, "http-addr", "127.0.0.1:8080", "address of the HTTP server (metrics, health, read API, dashboard); empty disables it")
 	fs.StringVar(&f.configFile, "config", "", "optional YAML file of per-category model and alert settings")
-	fs.StringVar(&f.conn.CredsFile, "creds", "", "NATS user credentials file")
-	fs.StringVar(&f.conn.NKeyFile, "nkey", "", "NATS NKey seed file")
-	fs.StringVar(&f.conn.User, "user", "", "NATS user name")
-	fs.StringVar(&f.conn.Password, "password", "", "NATS password")
-	fs.StringVar(&f.conn.Token, "token", "", "NATS token")
-	fs.StringVar(&f.conn.TLSCert, "tls-cert", "", "client certificate (PEM) for NATS TLS")
-	fs.StringVar(&f.conn.TLSKey, "tls-key", "", "client key (PEM) for NATS TLS")
-	fs.StringVar(&f.conn.TLSCA, "tls-ca", "", "root CAs (PEM) to verify the NATS server")
+	connFlags(fs, &f.conn)
+	eventFlags(fs, &f.events)
 	fs.Uint64Var(&f.seed, "seed", sc.Worker.Seed, "random seed of new categories")
 	fs.IntVar(&f.particles, "particles", sc.Worker.Particles.Particles, "particles per category")
 	fs.IntVar(&f.batch, "batch", sc.Worker.BatchSize, "changed products per micro-batch (a settle after each)")
@@ -71,6 +68,7 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.QuietPeriod = f.quiet
 	sc.RejectRetry = f.rejectRetry
 	sc.Bus.Replicas = f.replicas
+	sc.Events = f.events
 	def, per, err := loadSettings(f.configFile, sc.Worker)
 	if err != nil {
 		return sc, err
@@ -99,7 +97,7 @@ type running struct {
 	store    *state.Store
 	svc      *stream.Service
 	pub      *stream.Publisher
-	views    *stream.Views
+	views    *read.Views
 	micro    micro.Service
 	httpLn   net.Listener
 	stopHTTP context.CancelFunc
@@ -151,13 +149,8 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 	}
 	// The streams only: the durable consumer is the service's, which
 	// re-creates it at Run to deliver from the state file's position.
-	// EnsureStreams here would try to turn that consumer back to deliver
-	// from the first message, which the server refuses, so a restart
-	// after any committed run would fail.
-	for _, cfg := range sc.Bus.StreamConfigs() {
-		if _, err := r.js.CreateOrUpdateStream(ctx, cfg); err != nil {
-			return nil, fmt.Errorf("create or update stream %s: %w", cfg.Name, err)
-		}
+	if err := stream.CreateStreams(ctx, r.js, sc.Bus); err != nil {
+		return nil, err
 	}
 	reg := prometheus.NewRegistry()
 	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
@@ -171,20 +164,14 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 			return float64(n)
 		},
 		func() float64 {
-			// A scrape must not hang on an unreachable server.
-			cctx, cancel := context.WithTimeout(context.Background(), time.Second)
-			defer cancel()
-			c, err := r.js.Consumer(cctx, sc.Bus.InputStream, sc.Bus.Durable)
-			if err != nil {
+			// The service refreshes the count in the background: a scrape
+			// reads it and never waits on the server.
+			if svc == nil {
 				return math.NaN()
 			}
-			info := c.CachedInfo()
-			if info == nil {
-				return math.NaN()
-			}
-			return float64(info.NumPending + uint64(info.NumAckPending))
+			return svc.ConsumerPending()
 		})
-	r.views = stream.NewViews()
+	r.views = read.NewViews()
 	pc := stream.DefaultPublisherConfig()
 	pc.Stream = sc.Bus.OutputStream
 	if r.pub, err = stream.NewPublisher(r.store, r.js, pc, lg); err != nil {
@@ -194,20 +181,20 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 		return nil, err
 	}
 	r.svc = svc
-	if r.micro, err = stream.StartMicro(r.nc, r.views); err != nil {
+	if r.micro, err = read.StartMicro(r.nc, r.views); err != nil {
 		return nil, err
 	}
 	if f.httpAddr != "" {
-		if r.httpLn, err = stream.Listen(f.httpAddr); err != nil {
+		if r.httpLn, err = read.Listen(f.httpAddr); err != nil {
 			return nil, err
 		}
-		h := stream.NewHTTPHandler(r.views, reg, svc.Ready, lg)
+		h := read.NewHTTPHandler(r.views, reg, svc.Ready, lg)
 		var hctx context.Context
 		hctx, r.stopHTTP = context.WithCancel(context.Background())
 		r.wg.Add(1)
 		go func() {
 			defer r.wg.Done()
-			if err := stream.Serve(hctx, r.httpLn, h, lg); err != nil {
+			if err := read.Serve(hctx, r.httpLn, h, lg); err != nil {
 				r.errs <- fmt.Errorf("http: %w", err)
 			}
 		}()

@@ -17,7 +17,7 @@ func runServe(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 	var f serviceFlags
 	f.register(fs, "rivalmix.db", "127.0.0.1:4222")
 	envUsage(fs)
-	if err := fs.Parse(args); err != nil {
+	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if err := applyEnv(fs); err != nil {

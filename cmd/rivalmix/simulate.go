@@ -85,24 +85,22 @@ func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) e
 	natsURL := fs.String("nats", "", "publish to this NATS server's JetStream instead (subjects rivalmix.in.<category>)")
 	rate := fs.Float64("rate", 0, "with --nats: messages per second (0 = as fast as acknowledged)")
 	var conn stream.ConnectOptions
-	fs.StringVar(&conn.CredsFile, "creds", "", "NATS user credentials file")
-	fs.StringVar(&conn.User, "user", "", "NATS user name")
-	fs.StringVar(&conn.Password, "password", "", "NATS password")
-	fs.StringVar(&conn.Token, "token", "", "NATS token")
-	fs.StringVar(&conn.TLSCA, "tls-ca", "", "root CAs (PEM) to verify the NATS server")
+	connFlags(fs, &conn)
 	envUsage(fs)
-	if err := fs.Parse(args); err != nil {
+	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
 	if err := applyEnv(fs); err != nil {
 		return err
 	}
 	if (*out == "") == (*natsURL == "") {
-		fs.Usage()
-		return errors.New("simulate: give exactly one of --out and --nats")
+		return usageErrorf(fs, "give exactly one of --out and --nats")
 	}
 	if err := s.validate(); err != nil {
-		return fmt.Errorf("simulate: %w", err)
+		return usageErrorf(fs, "%v", err)
+	}
+	if err := conn.Validate(); err != nil {
+		return usageErrorf(fs, "%v", err)
 	}
 	if *natsURL != "" {
 		lg, _ := newLogger("warn", os.Stderr)

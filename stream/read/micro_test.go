@@ -1,18 +1,19 @@
-package stream
+package read
 
 import (
 	"encoding/json"
 	"testing"
 	"time"
 
+	"github.com/nats-io/nats-server/v2/server"
 	"github.com/nats-io/nats.go"
 	"github.com/nats-io/nats.go/micro"
 )
 
 func TestMicro(t *testing.T) {
 	t.Parallel()
-	e := startTestServer(t)
-	nc, _ := connectTest(t, e.ClientURL())
+	url := startNATS(t)
+	nc := connectNATS(t, url)
 	views := testViews()
 	svc, err := StartMicro(nc, views)
 	if err != nil {
@@ -29,7 +30,7 @@ func TestMicro(t *testing.T) {
 	}
 
 	// A second connection plays the client, as another process would.
-	client, _ := connectTest(t, e.ClientURL())
+	client := connectNATS(t, url)
 	request := func(subject string, body []byte) *nats.Msg {
 		t.Helper()
 		msg, err := client.Request(subject, body, 5*time.Second)
@@ -88,4 +89,35 @@ func TestMicro(t *testing.T) {
 	if _, err := StartMicro(nil, views); err == nil {
 		t.Error("StartMicro with no connection succeeded")
 	}
+}
+
+// startNATS starts an embedded nats-server on a random loopback port and
+// shuts it down when the test ends; a server that does not start fails
+// the test.
+func startNATS(t *testing.T) string {
+	t.Helper()
+	srv, err := server.NewServer(&server.Options{Host: "127.0.0.1", Port: -1, NoSigs: true, NoLog: true,
+		StoreDir: t.TempDir()})
+	if err != nil {
+		t.Fatalf("nats-server: %v", err)
+	}
+	go srv.Start()
+	t.Cleanup(func() {
+		srv.Shutdown()
+		srv.WaitForShutdown()
+	})
+	if !srv.ReadyForConnections(10 * time.Second) {
+		t.Fatal("nats-server not ready within 10 s")
+	}
+	return srv.ClientURL()
+}
+
+func connectNATS(t *testing.T, url string) *nats.Conn {
+	t.Helper()
+	nc, err := nats.Connect(url)
+	if err != nil {
+		t.Fatalf("connect %s: %v", url, err)
+	}
+	t.Cleanup(nc.Close)
+	return nc
 }

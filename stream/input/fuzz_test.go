@@ -1,4 +1,4 @@
-package stream_test
+package input_test
 
 import (
 	"encoding/json"
@@ -6,7 +6,7 @@ import (
 	"math"
 	"testing"
 
-	"rivalmix/stream"
+	"rivalmix/stream/input"
 )
 
 // FuzzDecode checks that Decode never panics, that every accepted datum
@@ -19,15 +19,15 @@ func FuzzDecode(f *testing.F) {
 	for _, tc := range rejectCases() {
 		f.Add([]byte(tc.payload))
 	}
-	lenient := stream.DefaultDecodeOptions()
+	lenient := input.DefaultDecodeOptions()
 	strict := lenient
 	strict.Strict = true
 	f.Fuzz(func(t *testing.T, payload []byte) {
-		m, err := stream.Decode(payload, lenient)
-		sm, serr := stream.Decode(payload, strict)
+		m, err := input.Decode(payload, lenient)
+		sm, serr := input.Decode(payload, strict)
 		if err != nil {
-			var ie *stream.InputError
-			if !errors.As(err, &ie) || !errors.Is(err, stream.ErrInvalidInput) {
+			var ie *input.InputError
+			if !errors.As(err, &ie) || !errors.Is(err, input.ErrInvalidInput) {
 				t.Fatalf("error %v (%T) is not an *InputError", err, err)
 			}
 			if serr == nil {
@@ -48,7 +48,7 @@ func FuzzDecode(f *testing.F) {
 		again := encodeCanonical(t, m)
 		// The canonical form spells every number with 17 significant
 		// digits, so it may be longer than the payload it came from.
-		m2, err := stream.Decode(again, stream.DecodeOptions{MaxBytes: 1 << 20})
+		m2, err := input.Decode(again, input.DecodeOptions{MaxBytes: 1 << 20})
 		if err != nil {
 			t.Fatalf("re-encoded message %s does not decode: %v", again, err)
 		}
@@ -58,15 +58,15 @@ func FuzzDecode(f *testing.F) {
 	})
 }
 
-func checkInvariants(t *testing.T, m stream.Message) {
+func checkInvariants(t *testing.T, m input.Message) {
 	t.Helper()
 	switch m.Kind {
-	case stream.KindRefitComplete, stream.KindWithdrawn:
+	case input.KindRefitComplete, input.KindWithdrawn:
 		if m.Relative != nil || m.IDs != nil || m.Dropped != nil || m.Competitors != 0 {
 			t.Fatalf("control message carries datum fields: %+v", m)
 		}
 		return
-	case stream.KindDatum:
+	case input.KindDatum:
 	default:
 		t.Fatalf("unknown kind %v", m.Kind)
 	}
@@ -108,17 +108,17 @@ func checkInvariants(t *testing.T, m stream.Message) {
 
 // encodeCanonical writes m back as JSON: a datum in the relative form,
 // with its dropped entries put back into the list.
-func encodeCanonical(t *testing.T, m stream.Message) []byte {
+func encodeCanonical(t *testing.T, m input.Message) []byte {
 	t.Helper()
 	var v any
 	switch m.Kind {
-	case stream.KindRefitComplete:
+	case input.KindRefitComplete:
 		v = struct {
 			Refit    string `json:"refit"`
 			Complete bool   `json:"complete"`
 			Expected int    `json:"expected"`
 		}{m.Refit, true, m.Expected}
-	case stream.KindWithdrawn:
+	case input.KindWithdrawn:
 		v = struct {
 			Product   string `json:"product"`
 			Refit     string `json:"refit,omitempty"`

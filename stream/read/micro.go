@@ -1,4 +1,4 @@
-package stream
+package read
 
 import (
 	"encoding/json"
@@ -48,7 +48,7 @@ type ProductRequest struct {
 // the returned service before closing nc.
 func StartMicro(nc *nats.Conn, views *Views) (micro.Service, error) {
 	if nc == nil || views == nil {
-		return nil, errors.New("stream: StartMicro: connection and views are required")
+		return nil, errors.New("read: StartMicro: connection and views are required")
 	}
 	svc, err := micro.AddService(nc, micro.Config{
 		Name:        MicroServiceName,
@@ -56,7 +56,7 @@ func StartMicro(nc *nats.Conn, views *Views) (micro.Service, error) {
 		Description: "rivalmix read queries: categories, segments, products",
 	})
 	if err != nil {
-		return nil, fmt.Errorf("stream: add micro service %s: %w", MicroServiceName, err)
+		return nil, fmt.Errorf("read: add micro service %s: %w", MicroServiceName, err)
 	}
 	g := svc.AddGroup(MicroSubjectPrefix)
 	endpoints := []struct {
@@ -92,7 +92,7 @@ func StartMicro(nc *nats.Conn, views *Views) (micro.Service, error) {
 	for _, e := range endpoints {
 		if err := g.AddEndpoint(e.name, e.h); err != nil {
 			_ = svc.Stop()
-			return nil, fmt.Errorf("stream: add micro endpoint %s.%s: %w", MicroSubjectPrefix, e.name, err)
+			return nil, fmt.Errorf("read: add micro endpoint %s.%s: %w", MicroSubjectPrefix, e.name, err)
 		}
 	}
 	return svc, nil

@@ -1,4 +1,4 @@
-package stream
+package read
 
 import (
 	"context"
@@ -7,7 +7,6 @@ import (
 	"fmt"
 	"html/template"
 	"log/slog"
-	"math"
 	"net"
 	"net/http"
 	"net/url"
@@ -17,6 +16,9 @@ import (
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
+
+	"rivalmix/alerts"
+	"rivalmix/stream/category"
 )
 
 // httpShutdownTimeout bounds how long Serve waits for requests in flight
@@ -28,7 +30,7 @@ const httpShutdownTimeout = 5 * time.Second
 func Listen(addr string) (net.Listener, error) {
 	ln, err := net.Listen("tcp", addr)
 	if err != nil {
-		return nil, fmt.Errorf("stream: http listen address %q: %w", addr, err)
+		return nil, fmt.Errorf("read: http listen address %q: %w", addr, err)
 	}
 	return ln, nil
 }
@@ -53,7 +55,7 @@ func Serve(ctx context.Context, ln net.Listener, h http.Handler, lg *slog.Logger
 	go func() { errc <- srv.Serve(ln) }()
 	select {
 	case err := <-errc:
-		return fmt.Errorf("stream: http serve on %s: %w", ln.Addr(), err)
+		return fmt.Errorf("read: http serve on %s: %w", ln.Addr(), err)
 	case <-ctx.Done():
 	}
 	sctx, cancel := context.WithTimeout(context.Background(), httpShutdownTimeout)
@@ -63,7 +65,7 @@ func Serve(ctx context.Context, ln net.Listener, h http.Handler, lg *slog.Logger
 		_ = srv.Close()
 	}
 	if err := <-errc; err != nil && !errors.Is(err, http.ErrServerClosed) {
-		return fmt.Errorf("stream: http serve on %s: %w", ln.Addr(), err)
+		return fmt.Errorf("read: http serve on %s: %w", ln.Addr(), err)
 	}
 	return nil
 }
@@ -185,13 +187,13 @@ func (h *httpAPI) fail(w http.ResponseWriter, err error) {
 const dashboardMembers = 12
 
 type dashboardSegment struct {
-	SegmentView
+	category.SegmentView
 	Shown []string
 	More  int
 }
 
 type dashboardCategory struct {
-	CategoryView
+	category.CategoryView
 	Segments []dashboardSegment
 }
 
@@ -225,15 +227,15 @@ func (h *httpAPI) dashboard(w http.ResponseWriter, r *http.Request) {
 
 // num formats a view number for the page: three significant digits, or a
 // dash when it is not defined.
-func num(f Float) string {
-	v := float64(f)
-	if math.IsNaN(v) || math.IsInf(v, 0) {
+func num(f alerts.Float) string {
+	if !f.Defined() {
 		return "–"
 	}
-	return strconv.FormatFloat(v, 'g', 3, 64)
+	return strconv.FormatFloat(float64(f), 'g', 3, 64)
 }
 
-var dashboardPage = template.Must(template.New("dashboard").Funcs(template.FuncMap{"num": num, "pathEscape": url.PathEscape}).Parse(`<!doctype html>
+var dashboardPage = template.Must(template.New("dashboard").Funcs(template.FuncMap{"num": num, "pathEscape": url.PathEscape,
+	"caution": func() string { return alerts.Caution }}).Parse(`<!doctype html>
 <html lang="en">
 <head>
 <meta charset="utf-8">
@@ -250,9 +252,10 @@ td.n { text-align: right; font-variant-numeric: tabular-nums; }
 <body>
 <h1>rivalmix segments</h1>
 <p class="meta">Segments of each category by how fast the relative cross-elasticities of its products' strongest competitors decay. JSON: <a href="/v1/categories">/v1/categories</a>; metrics: <a href="/metrics">/metrics</a>.</p>
+<p><strong>{{caution}}</strong></p>
 {{range .Categories}}{{$cat := .Name}}
 <h2>{{.Name}}</h2>
-<p class="meta">refit {{.LastRefit}} · {{.Products}} products · {{.Segments}} segments · ESS {{num .ESS}} · mean surprise {{num .MeanSurprise}} nats · {{.Events}} events</p>
+<p class="meta">refit {{.LastRefit}} · {{.Products}} products · {{.CategoryView.Segments}} segments · ESS {{num .ESS}} · mean surprise {{num .MeanSurprise}} nats · {{.Events}} events</p>
 <table>
 <tr><th>segment</th><th>size</th><th>median 1st</th><th>median 2nd</th><th>median 3rd</th><th>reported</th><th>members</th></tr>
 {{range .Segments}}<tr><td>{{.ID}}</td><td class="n">{{.Size}}</td><td class="n">{{num (index .Medians 0)}}</td><td class="n">{{num (index .Medians 1)}}</td><td class="n">{{num (index .Medians 2)}}</td><td class="n">{{num .MeanReported}}</td><td>{{range $i, $m := .Shown}}{{if $i}}, {{end}}<a href="/v1/categories/{{pathEscape $cat}}/products/{{pathEscape $m}}">{{$m}}</a>{{end}}{{if .More}} and {{.More}} more{{end}}</td></tr>

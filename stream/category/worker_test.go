@@ -1,4 +1,4 @@
-package stream
+package category
 
 import (
 	"fmt"
@@ -7,11 +7,12 @@ import (
 
 	"rivalmix/alerts"
 	"rivalmix/sequential/synth"
+	"rivalmix/stream/input"
 )
 
-func decodeOrFail(t *testing.T, b []byte) Message {
+func decodeOrFail(t *testing.T, b []byte) input.Message {
 	t.Helper()
-	m, err := Decode(b, DefaultDecodeOptions())
+	m, err := input.Decode(b, input.DefaultDecodeOptions())
 	if err != nil {
 		t.Fatalf("decode %s: %v", b, err)
 	}

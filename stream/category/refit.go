@@ -1,0 +1,94 @@
+package category
+
+import (
+	"fmt"
+	"math"
+
+	"rivalmix/alerts"
+	"rivalmix/sequential"
+)
+
+// RefitReport is the outcome of one completed refit of a category.
+type RefitReport struct {
+	Category, Refit string
+	Events          []alerts.Event
+	Summary         sequential.Summary
+	Products        []string
+	Labels          []string // reported segment id per product
+	Alerts          alerts.Outcome
+	ESS             float64
+	Diversity       int
+	MeanSurprise    float64 // NaN when the refit changed no datum
+	Changes         int     // data changes since the previous refit
+}
+
+// CompleteRefit ends a refit: the refit-sized rejuvenation, the posterior
+// summary, stable segment ids and alerts. It returns the events to
+// publish; the alert memory moves on.
+func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
+	rep := RefitReport{Category: w.category, Refit: refit, Changes: w.changes}
+	if w.ps.Len() == 0 {
+		return rep, nil
+	}
+	w.ps.SettleRefit()
+	data := w.ps.Data()
+	sum, err := w.ps.Summary(w.cfg.Summary)
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
+	}
+	rep.Summary = sum
+	rep.Products = w.ps.Products()
+	rep.ESS = w.ps.ESS()
+	rep.Diversity = w.ps.Diversity()
+	rep.MeanSurprise = math.NaN() // no datum changed: the summary omits it
+	if w.surpriseN > 0 {
+		rep.MeanSurprise = w.surpriseSum / float64(w.surpriseN)
+	}
+	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
+		Category: w.category, Refit: refit, Products: rep.Products, Data: data, Summary: sum,
+		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity, MeanSurprise: rep.MeanSurprise,
+	})
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
+	}
+	w.mem = out.Memory
+	rep.Alerts = out
+	rep.Events = out.Events
+	rep.Labels = out.Labels
+	w.surpriseSum, w.surpriseN, w.changes = 0, 0, 0
+	w.lastRefit = refit
+	w.refits++
+	w.events += len(out.Events)
+	return rep, nil
+}
+
+// Current summarises the category as it stands, without moving the
+// particles or the alert memory: what the read API shows after a restart
+// until the next refit completes. Events are not returned.
+func (w *Worker) Current() (RefitReport, error) {
+	rep := RefitReport{Category: w.category, Refit: w.lastRefit, MeanSurprise: math.NaN()}
+	if w.ps.Len() == 0 || w.lastRefit == "" {
+		return rep, nil
+	}
+	data := w.ps.Data()
+	sum, err := sequential.Summarize(w.ps.Draws(), data, w.cfg.Summary)
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
+	rep.Summary = sum
+	rep.Products = w.ps.Products()
+	rep.ESS = w.ps.ESS()
+	rep.Diversity = w.ps.Diversity()
+	// Evaluating the last refit again against the memory it produced
+	// gives the labels it reported; the outcome's memory is discarded.
+	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
+		Category: w.category, Refit: w.lastRefit, Products: rep.Products, Data: data, Summary: sum,
+		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity,
+	})
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
+	rep.Alerts = out
+	rep.Labels = out.Labels
+	return rep, nil
+}
