@@ -27,6 +27,7 @@ func Assign(cost [][]float64) ([]int, error) {
 		return []int{}, nil
 	}
 	cols := len(cost[0])
+	largest := 0.0
 	for r, row := range cost {
 		if len(row) != cols {
 			return nil, fmt.Errorf("%w: cost row %d has %d columns, row 0 has %d", ErrAssign, r, len(row), cols)
@@ -35,7 +36,19 @@ func Assign(cost [][]float64) ([]int, error) {
 			if math.IsNaN(v) || math.IsInf(v, 0) {
 				return nil, fmt.Errorf("%w: cost[%d][%d] is %v, want finite", ErrAssign, r, c, v)
 			}
+			largest = max(largest, math.Abs(v))
 		}
+	}
+	// The potentials grow to sums of costs, which overflow for costs near
+	// the largest float64 (found by FuzzAssignMax: reduced costs became
+	// Inf - Inf). Scaling by a power of two that brings every cost into
+	// [-1, 1] keeps them bounded; it is exact for every cost that stays a
+	// normal number, so the assignment, ties included, is the one of the
+	// unscaled matrix.
+	scale := 1.0
+	if largest > 1 {
+		_, exp := math.Frexp(largest)
+		scale = math.Ldexp(1, -exp)
 	}
 	out := make([]int, rows)
 	if cols == 0 {
@@ -45,12 +58,12 @@ func Assign(cost [][]float64) ([]int, error) {
 		return out, nil
 	}
 	if rows <= cols {
-		copy(out, assignWide(rows, cols, func(r, c int) float64 { return cost[r][c] }))
+		copy(out, assignWide(rows, cols, func(r, c int) float64 { return cost[r][c] * scale }))
 		return out, nil
 	}
 	// More rows than columns: solve the transpose, whose rows are the
 	// columns, and read the pairs back.
-	colRow := assignWide(cols, rows, func(r, c int) float64 { return cost[c][r] })
+	colRow := assignWide(cols, rows, func(r, c int) float64 { return cost[c][r] * scale })
 	for r := range out {
 		out[r] = -1
 	}
