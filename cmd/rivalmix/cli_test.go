@@ -94,6 +94,7 @@ func TestSettingsFileErrors(t *testing.T) {
 		{"defaults:\n  alpha_prior: {shape: 1, scale: 2}\n", []string{`defaults.alpha_prior: unknown key "scale"; the keys are shape and rate`}},
 		{"categories:\n  breakfast cereal:\n    particles: 64\n", []string{`"breakfast cereal" is not a category name`}},
 		{"default:\n  particles: 64\n", []string{`line 1: unknown key "default"; the file has the keys defaults and categories`}},
+		{"categories:\n  breakfast-cereal:\n    competitors: 0\n", []string{"categories.breakfast-cereal: ", "want 1..1000 candidate competitors"}},
 	} {
 		path := filepath.Join(dir, "settings.yaml")
 		if err := os.WriteFile(path, []byte(tc.yaml), 0o644); err != nil {

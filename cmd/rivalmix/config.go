@@ -166,14 +166,20 @@ func loadSettings(path string, base category.WorkerConfig) (category.WorkerConfi
 		return base, nil, fmt.Errorf("config %s: %w", path, err)
 	}
 	def, err := f.Defaults.apply(base)
+	if err == nil {
+		err = def.Validate()
+	}
 	if err != nil {
-		return base, nil, fmt.Errorf("config %s: defaults: %w", path, err)
+		return base, nil, fmt.Errorf("config %s: defaults (over the command-line flags): %w", path, err)
 	}
 	per := map[string]category.WorkerConfig{}
 	for cat, s := range f.Categories {
 		w, err := s.apply(def)
+		if err == nil {
+			err = w.Validate()
+		}
 		if err != nil {
-			return base, nil, fmt.Errorf("config %s: category %s: %w", path, cat, err)
+			return base, nil, fmt.Errorf("config %s: categories.%s: %w", path, cat, err)
 		}
 		per[cat] = w
 	}

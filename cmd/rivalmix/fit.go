@@ -89,11 +89,7 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	if err := checkWritable(c.out); err != nil {
 		return fmt.Errorf("fit: --out: %w", err)
 	}
-	progress := stderr
-	if c.quiet {
-		progress = io.Discard
-	}
-	rej, err := openRejectLog(c.rejected, progress)
+	progress, rej, err := openOutputs(c.quiet, stderr, c.rejected)
 	if err != nil {
 		return fmt.Errorf("fit: --rejected: %w", err)
 	}

@@ -17,9 +17,22 @@ type rejectLog struct {
 	n     int
 }
 
+// openOutputs returns where a batch command's progress goes (stderr, or
+// nowhere with --quiet) and its reject log, which writes the --rejected
+// file at path ("" for none) and prints the first reasons with the
+// progress. Close the log's file when done (a nil *os.File closes without
+// harm).
+func openOutputs(quiet bool, stderr io.Writer, path string) (io.Writer, *rejectLog, error) {
+	progress := stderr
+	if quiet {
+		progress = io.Discard
+	}
+	r, err := openRejectLog(path, progress)
+	return progress, r, err
+}
+
 // openRejectLog creates the --rejected file at path ("" for none) and
-// prints the first reasons to shown. Close its file when done (a nil
-// *os.File closes without harm).
+// prints the first reasons to shown.
 func openRejectLog(path string, shown io.Writer) (*rejectLog, error) {
 	r := &rejectLog{w: io.Discard, shown: shown}
 	if path == "" {

@@ -91,11 +91,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return fmt.Errorf("replay: --out: %w", err)
 	}
 	defer out.Close()
-	progress := stderr
-	if c.quiet {
-		progress = io.Discard
-	}
-	rej, err := openRejectLog(c.rejected, progress)
+	progress, rej, err := openOutputs(c.quiet, stderr, c.rejected)
 	if err != nil {
 		return fmt.Errorf("replay: --rejected: %w", err)
 	}
