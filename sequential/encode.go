@@ -9,26 +9,36 @@ import (
 )
 
 // encodingVersion is the first byte of every encoded particle system.
-// Version 3 layout (little-endian; strings and byte blobs length-prefixed
+// Version 4 layout (little-endian; strings and byte blobs length-prefixed
 // with a uvarint; counts are uvarints, floats are IEEE-754 bits):
 //
 //	version byte
-//	resampled-since-the-last-settle byte (0 or 1; absent in version 1,
-//	  which DecodeParticles still reads, taking it as 0)
-//	config: aux, particles, ess fraction, resampler, sweeps, random share, refit sweeps,
-//	  keep sweeps, keep ess (absent before version 3, read as 0: every
-//	  Replace redraws, as those versions did)
+//	flags byte: 1 resampled since the last settle, 2 built
+//	config: aux, particles, ess fraction, resampler, sweeps, random share,
+//	  keep ess, split-merge, rao-blackwell (0 or 1), build chains, build
+//	  burn, refit burn, min chains, diversity floor, renew below
 //	prior: count a, count b, (mu, sigma) of log a, log k, log s, alpha shape, alpha rate
-//	master generator (PCG MarshalBinary blob), log evidence
+//	master generator (PCG MarshalBinary blob), log evidence, log moved
 //	slots: count, then per slot a presence byte and, if present, id, L, n, n values
 //	free slots, touched slots
 //	label buffers: count, then per buffer its length and uint16 labels
 //	particles: count, then per particle log weight, origin, alpha, label
 //	  buffer index, segment count, per segment log a, log k, log s, size,
 //	  reported, considered, then its free-segment list
-//	kept-draws flag byte; if 1, per particle a count and per kept draw its
-//	  log weight, alpha, segment count and thetas, label count and labels
-const encodingVersion = 3
+//	placement-records flag byte; if 1, per particle a presence byte and,
+//	  if present, per slot its entry count and per entry the segment and
+//	  the probability (float32 bits), then the movers: count, and per
+//	  mover its slot and label before the scan
+//
+// Versions 1 to 3 (written before the waste-free updater) still decode:
+// their config held refit sweeps and keep sweeps, which are read and
+// dropped, and no split-merge, recording, build or diversity settings,
+// which take DefaultParticleConfig's values; their systems were built by
+// adds, so they decode as built; version 1 has no resampled byte (0),
+// versions before 3 no keep ess (0); their trailing kept draws are read
+// and dropped (summaries then use the particles' own labels until the
+// next waste-free step).
+const encodingVersion = 4
 
 // ErrEncoding reports a particle-system encoding that cannot be decoded.
 var ErrEncoding = errors.New("sequential: bad particle-system encoding")
@@ -45,16 +55,20 @@ func (e *encoder) blob(v []byte) {
 }
 
 // Encode returns the whole particle system, including the random
-// generator's state, as bytes: Decode of the result continues exactly as
-// the system would have. The Workers setting is not stored.
+// generator's state and the placement records of the last waste-free
+// step while they are valid, as bytes: Decode of the result continues
+// exactly as the system would have. The Workers setting is not stored.
 func (ps *Particles) Encode() []byte {
 	e := &encoder{b: make([]byte, 0, 1024+len(ps.parts)*(len(ps.slots)*2+64))}
 	e.b = append(e.b, encodingVersion)
+	var flags byte
 	if ps.resampledSince {
-		e.b = append(e.b, 1)
-	} else {
-		e.b = append(e.b, 0)
+		flags |= 1
 	}
+	if ps.built {
+		flags |= 2
+	}
+	e.b = append(e.b, flags)
 	c := ps.cfg
 	e.i(c.Aux)
 	e.i(c.Particles)
@@ -62,9 +76,19 @@ func (ps *Particles) Encode() []byte {
 	e.i(int(c.Resampler))
 	e.i(c.Sweeps)
 	e.f(c.RandomShare)
-	e.i(c.RefitSweeps)
-	e.i(c.KeepSweeps)
 	e.f(c.KeepESS)
+	e.f(c.SplitMerge)
+	if c.RaoBlackwell {
+		e.i(1)
+	} else {
+		e.i(0)
+	}
+	e.i(c.BuildChains)
+	e.i(c.BuildBurn)
+	e.i(c.RefitBurn)
+	e.i(c.MinChains)
+	e.f(c.DiversityFloor)
+	e.f(c.RenewBelow)
 	pr := ps.prior
 	for _, v := range []float64{pr.CountA, pr.CountB, pr.LogA.Mu, pr.LogA.Sigma, pr.LogK.Mu, pr.LogK.Sigma,
 		pr.LogS.Mu, pr.LogS.Sigma, pr.AlphaShape, pr.AlphaRate} {
@@ -76,6 +100,7 @@ func (ps *Particles) Encode() []byte {
 	}
 	e.blob(m)
 	e.f(ps.logEvidence)
+	e.f(ps.logMoved)
 	e.i(len(ps.slots))
 	for s, d := range ps.slots {
 		if d == nil {
@@ -135,28 +160,29 @@ func (ps *Particles) Encode() []byte {
 			e.i(int(c))
 		}
 	}
-	// The draws kept by the latest settle, while still valid, so that a
-	// restored system reports the same posterior.
-	if !ps.keptValid {
+	if ps.soft == nil {
 		e.b = append(e.b, 0)
 		return e.b
 	}
 	e.b = append(e.b, 1)
-	for _, k := range ps.kept {
-		e.i(len(k))
-		for _, d := range k {
-			e.f(d.LogWeight)
-			e.f(d.Alpha)
-			e.i(len(d.Segments))
-			for _, t := range d.Segments {
-				e.f(t.LogA)
-				e.f(t.LogK)
-				e.f(t.LogS)
+	for _, sf := range ps.soft {
+		if sf == nil {
+			e.b = append(e.b, 0)
+			continue
+		}
+		e.b = append(e.b, 1)
+		for i := 0; i+1 < len(sf.Off); i++ {
+			seg, p := sf.entries(i)
+			e.i(len(seg))
+			for k, c := range seg {
+				e.i(int(c))
+				e.b = binary.LittleEndian.AppendUint32(e.b, math.Float32bits(p[k]))
 			}
-			e.i(len(d.Labels))
-			for _, v := range d.Labels {
-				e.b = binary.LittleEndian.AppendUint16(e.b, v)
-			}
+		}
+		e.i(len(sf.Movers))
+		for _, m := range sf.Movers {
+			e.i(int(m.Product))
+			e.i(int(m.From))
 		}
 	}
 	return e.b
@@ -194,6 +220,26 @@ func (d *decoder) i(what string, limit int) int {
 		return 0
 	}
 	return int(v)
+}
+
+// n reads a count of items that each take at least size bytes further on,
+// no larger than limit: a count the remaining bytes cannot hold is
+// refused before anything is allocated for it.
+func (d *decoder) n(what string, limit, size int) int {
+	return d.i(what, min(limit, len(d.b)/size))
+}
+
+// flag reads a byte that must be 0 (absent) or 1 (present).
+func (d *decoder) flag(what string) (bool, error) {
+	if len(d.b) == 0 {
+		return false, fmt.Errorf("%w: truncated at %s", ErrEncoding, what)
+	}
+	v := d.b[0]
+	d.b = d.b[1:]
+	if v > 1 {
+		return false, fmt.Errorf("%w: %s %d", ErrEncoding, what, v)
+	}
+	return v == 1, nil
 }
 
 func (d *decoder) f(what string) float64 {
@@ -235,9 +281,17 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if b[0] < 1 || b[0] > encodingVersion {
 		return nil, fmt.Errorf("%w: version %d, want 1 to %d", ErrEncoding, b[0], encodingVersion)
 	}
+	version := b[0]
 	d := &decoder{b: b[1:]}
-	resampledSince := false
-	if b[0] >= 2 {
+	resampledSince, built := false, true
+	switch {
+	case version >= 4:
+		if len(d.b) == 0 || d.b[0] > 3 {
+			return nil, fmt.Errorf("%w: flags byte missing or unknown", ErrEncoding)
+		}
+		resampledSince, built = d.b[0]&1 != 0, d.b[0]&2 != 0
+		d.b = d.b[1:]
+	case version >= 2:
 		if len(d.b) == 0 || d.b[0] > 1 {
 			return nil, fmt.Errorf("%w: resampled-since-settle byte missing or not 0/1", ErrEncoding)
 		}
@@ -245,17 +299,30 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		d.b = d.b[1:]
 	}
 	const big = 1 << 30
-	var c ParticleConfig
+	c := DefaultParticleConfig()
 	c.Aux = d.i("aux", 1<<16)
 	c.Particles = d.i("particles", 1<<16)
 	c.ESSFraction = d.f("ess fraction")
 	c.Resampler = Resampler(d.i("resampler", 16))
 	c.Sweeps = d.i("sweeps", big)
 	c.RandomShare = d.f("random share")
-	c.RefitSweeps = d.i("refit sweeps", big)
-	c.KeepSweeps = d.i("keep sweeps", big)
-	if b[0] >= 3 {
+	c.KeepESS = 0
+	if version < 4 {
+		d.i("refit sweeps", big)
+		d.i("keep sweeps", big)
+	}
+	if version >= 3 {
 		c.KeepESS = d.f("keep ess")
+	}
+	if version >= 4 {
+		c.SplitMerge = d.f("split-merge")
+		c.RaoBlackwell = d.i("rao-blackwell", 1) == 1
+		c.BuildChains = d.i("build chains", 1<<16)
+		c.BuildBurn = d.i("build burn", big)
+		c.RefitBurn = d.i("refit burn", big)
+		c.MinChains = d.i("min chains", 1<<16)
+		c.DiversityFloor = d.f("diversity floor")
+		c.RenewBelow = d.f("renew below")
 	}
 	c.Workers = workers
 	pr := &c.Prior
@@ -269,13 +336,16 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if err := c.Validate(); err != nil {
 		return nil, fmt.Errorf("%w: %w", ErrEncoding, err)
 	}
-	ps := &Particles{cfg: c, prior: c.Prior, index: map[string]int{}, resampledSince: resampledSince}
+	ps := &Particles{cfg: c, prior: c.Prior, index: map[string]int{}, resampledSince: resampledSince, built: built}
 	ps.master = rand.NewPCG(0, 0)
 	if err := ps.master.UnmarshalBinary(d.bytes("generator")); err != nil && d.err == nil {
 		return nil, fmt.Errorf("%w: generator: %w", ErrEncoding, err)
 	}
 	ps.logEvidence = d.f("log evidence")
-	nslots := d.i("slots", big)
+	if version >= 4 {
+		ps.logMoved = d.f("log moved")
+	}
+	nslots := d.n("slots", big, 1)
 	if d.err != nil {
 		return nil, d.err
 	}
@@ -294,7 +364,7 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		}
 		id := string(d.bytes("product id"))
 		l := d.i("competitors", MaxCompetitors)
-		n := d.i("count", l)
+		n := d.n("count", l, 8)
 		vals := make([]float64, n)
 		for j := range vals {
 			vals[j] = d.f("value")
@@ -314,17 +384,17 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		ps.index[id] = s
 		ps.n++
 	}
-	ps.free = make([]int, d.i("free slots", nslots))
+	ps.free = make([]int, d.n("free slots", nslots, 1))
 	for j := range ps.free {
 		ps.free[j] = d.i("free slot", nslots-1)
 	}
-	ps.touched = make([]int, d.i("touched", nslots))
+	ps.touched = make([]int, d.n("touched", nslots, 1))
 	for j := range ps.touched {
 		s := d.i("touched slot", nslots-1)
 		ps.touched[j] = s
 		ps.isTouch[s] = true
 	}
-	bufs := make([]*labelBuf, d.i("label buffers", c.Particles))
+	bufs := make([]*labelBuf, d.n("label buffers", c.Particles, 1))
 	for j := range bufs {
 		n := d.i("labels", nslots)
 		if d.err != nil || len(d.b) < 2*n {
@@ -338,7 +408,7 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		d.b = d.b[2*n:]
 		bufs[j] = lb
 	}
-	P := d.i("particles", c.Particles)
+	P := d.n("particles", c.Particles, 20)
 	if d.err != nil {
 		return nil, d.err
 	}
@@ -363,7 +433,7 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 		}
 		st.labels = bufs[bi]
 		st.labels.refs.Add(1)
-		st.segs = make([]segment, d.i("segments", MaxSegments))
+		st.segs = make([]segment, d.n("segments", MaxSegments, 27))
 		for k := range st.segs {
 			t := Theta{LogA: d.f("log a"), LogK: d.f("log k"), LogS: d.f("log s")}
 			st.segs[k].setTheta(t)
@@ -371,7 +441,7 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 			st.segs[k].reported = d.i("reported", big)
 			st.segs[k].considered = d.i("considered", big)
 		}
-		st.free = make([]uint16, d.i("free segments", len(st.segs)))
+		st.free = make([]uint16, d.n("free segments", len(st.segs), 1))
 		for k := range st.free {
 			st.free[k] = uint16(d.i("free segment", len(st.segs)-1))
 		}
@@ -380,7 +450,11 @@ func DecodeParticles(b []byte, workers int) (*Particles, error) {
 	if d.err != nil {
 		return nil, d.err
 	}
-	if err := ps.decodeKept(d, c.KeepSweeps); err != nil {
+	if version >= 4 {
+		if err := ps.decodeSoft(d); err != nil {
+			return nil, err
+		}
+	} else if err := skipKept(d, len(ps.parts), ps.n); err != nil {
 		return nil, err
 	}
 	if len(d.b) != 0 {
@@ -446,10 +520,13 @@ func (ps *Particles) check() error {
 		con := make([]int, len(st.segs))
 		for s, c := range st.labels.l {
 			d := ps.slots[s]
-			if (d == nil) != (c == Absent) {
+			if !ps.built && c != Absent {
+				return fmt.Errorf("particle %d: slot %d labelled before the first build", p, s)
+			}
+			if ps.built && (d == nil) != (c == Absent) {
 				return fmt.Errorf("particle %d: slot %d presence and label disagree", p, s)
 			}
-			if d == nil {
+			if c == Absent {
 				continue
 			}
 			if int(c) >= len(st.segs) {
@@ -471,48 +548,88 @@ func (ps *Particles) check() error {
 	return nil
 }
 
-// decodeKept reads the kept draws written after the particles.
-func (ps *Particles) decodeKept(d *decoder, keep int) error {
-	if len(d.b) == 0 {
-		return fmt.Errorf("%w: truncated at kept-draws flag", ErrEncoding)
+// skipKept reads and drops the kept draws that versions 1 to 3 wrote
+// after the particles (P particles, n present products).
+func skipKept(d *decoder, P, n int) error {
+	if present, err := d.flag("kept-draws flag"); !present || err != nil {
+		return err
 	}
-	flag := d.b[0]
-	d.b = d.b[1:]
-	switch flag {
-	case 0:
-		return nil
-	case 1:
-	default:
-		return fmt.Errorf("%w: kept-draws flag %d", ErrEncoding, flag)
-	}
-	ps.kept = make([][]Draw, len(ps.parts))
-	for p := range ps.kept {
-		n := d.i("kept draws", keep)
-		for j := 0; j < n && d.err == nil; j++ {
-			dr := Draw{LogWeight: d.f("kept weight"), Alpha: d.f("kept alpha")}
-			dr.Segments = make([]Theta, d.i("kept segments", MaxSegments))
-			for k := range dr.Segments {
-				dr.Segments[k] = Theta{LogA: d.f("kept log a"), LogK: d.f("kept log k"), LogS: d.f("kept log s")}
+	for p := 0; p < P && d.err == nil; p++ {
+		k := d.n("kept draws", 1<<16, 18)
+		for j := 0; j < k && d.err == nil; j++ {
+			d.f("kept weight")
+			d.f("kept alpha")
+			segs := d.n("kept segments", MaxSegments, 24)
+			for x := 0; x < 3*segs; x++ {
+				d.f("kept theta")
 			}
-			nl := d.i("kept labels", ps.n)
-			if d.err != nil || nl != ps.n || len(d.b) < 2*nl {
+			nl := d.i("kept labels", n)
+			if d.err != nil || nl != n || len(d.b) < 2*nl {
 				d.fail("kept labels")
 				break
 			}
-			dr.Labels = make([]uint16, nl)
-			for k := range dr.Labels {
-				dr.Labels[k] = binary.LittleEndian.Uint16(d.b[2*k:])
-				if int(dr.Labels[k]) >= len(dr.Segments) {
+			for x := 0; x < nl; x++ {
+				if int(binary.LittleEndian.Uint16(d.b[2*x:])) >= segs {
 					d.fail("kept label")
 				}
 			}
 			d.b = d.b[2*nl:]
-			ps.kept[p] = append(ps.kept[p], dr)
 		}
 	}
-	if d.err != nil {
-		return d.err
+	return d.err
+}
+
+// decodeSoft reads the placement records written after the particles.
+func (ps *Particles) decodeSoft(d *decoder) error {
+	if present, err := d.flag("placement-records flag"); !present || err != nil {
+		return err
 	}
-	ps.keptValid = true
-	return nil
+	ps.soft = make([]*Soft, len(ps.parts))
+	for p := range ps.soft {
+		if d.err != nil {
+			break
+		}
+		if len(d.b) == 0 || d.b[0] > 1 {
+			d.fail("placement record presence")
+			break
+		}
+		present := d.b[0] == 1
+		d.b = d.b[1:]
+		if !present {
+			continue
+		}
+		sf := &Soft{Off: make([]uint32, 1, len(ps.slots)+1)}
+		nseg := len(ps.parts[p].segs)
+		for i := 0; i < len(ps.slots) && d.err == nil; i++ {
+			k := d.n("placement entries", nseg, 5)
+			for x := 0; x < k && d.err == nil; x++ {
+				c := d.i("placement segment", nseg-1)
+				if len(d.b) < 4 {
+					d.fail("placement probability")
+					break
+				}
+				pr := math.Float32frombits(binary.LittleEndian.Uint32(d.b))
+				d.b = d.b[4:]
+				if !(pr >= 0 && pr <= 1) {
+					d.fail("placement probability")
+				}
+				sf.Seg = append(sf.Seg, uint16(c))
+				sf.P = append(sf.P, pr)
+			}
+			sf.Off = append(sf.Off, uint32(len(sf.Seg)))
+		}
+		nm := d.n("movers", len(ps.slots), 2)
+		last := -1
+		for x := 0; x < nm && d.err == nil; x++ {
+			i := d.i("mover slot", len(ps.slots)-1)
+			from := d.i("mover label", nseg-1)
+			if i <= last || ps.slots[i] == nil {
+				d.fail("mover slot")
+			}
+			last = i
+			sf.Movers = append(sf.Movers, Mover{Product: uint32(i), From: uint16(from)})
+		}
+		ps.soft[p] = sf
+	}
+	return d.err
 }

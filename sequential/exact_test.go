@@ -511,9 +511,9 @@ func TestEnumerationConverged(t *testing.T) {
 	t.Logf("exact posterior of K: %v; log evidence %.6f", ks, ep.logEvidence)
 }
 
-// exactParticles builds a particle system over data: Add one product at a
-// time with a settle (default budget) after each, then extra settles with
-// four full rejuvenation sweeps.
+// exactParticles builds a particle system over data from an empty
+// population (Build with no products): Add one product at a time with a
+// settle (default budget) after each, then extra waste-free steps.
 func exactParticles(t testing.TB, prior Prior, data []*Datum, particles int, seed uint64, extra int) *Particles {
 	t.Helper()
 	cfg := DefaultParticleConfig()
@@ -523,6 +523,7 @@ func exactParticles(t testing.TB, prior Prior, data []*Datum, particles int, see
 	if err != nil {
 		t.Fatal(err)
 	}
+	ps.Build()
 	for i, d := range data {
 		if _, err := ps.Add(exactID(i), *d); err != nil {
 			t.Fatal(err)
@@ -530,7 +531,7 @@ func exactParticles(t testing.TB, prior Prior, data []*Datum, particles int, see
 		ps.Settle()
 	}
 	for j := 0; j < extra; j++ {
-		ps.SettleFull(4)
+		ps.SettleRefit()
 	}
 	return ps
 }
@@ -1015,6 +1016,7 @@ func handSystem(t *testing.T) (*Particles, []Theta) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	ps.Build() // an empty population: the adds below go into it one at a time
 	data := exactData()
 	for i := 0; i < 4; i++ {
 		if _, err := ps.Add(exactID(i), *data[i]); err != nil {
@@ -1186,7 +1188,7 @@ func TestSystematicResample(t *testing.T) {
 			if r < len(us) {
 				u = us[r]
 			}
-			anc := systematicResample(w, u)
+			anc := systematicResample(w, len(w), u)
 			if len(anc) != P {
 				t.Fatalf("vector %d: %d ancestors, want %d", k, len(anc), P)
 			}
@@ -1223,7 +1225,7 @@ func TestSystematicResampleZeroWeightEdges(t *testing.T) {
 	src := rand.New(rand.NewPCG(53, 54))
 	for k, w := range testWeightVectors(P, src) {
 		for _, u := range []float64{0, math.Nextafter(1, 0)} {
-			for j, c := range ancestorCounts(systematicResample(w, u), P) {
+			for j, c := range ancestorCounts(systematicResample(w, len(w), u), P) {
 				if w[j] == 0 && c > 0 {
 					t.Errorf("vector %d u=%v: index %d has weight 0 but was drawn %d times", k, u, j, c)
 				}
@@ -1260,7 +1262,7 @@ func TestResidualResample(t *testing.T) {
 		}
 		sum := make([]float64, P)
 		for r := 0; r < R; r++ {
-			anc := residualResample(w, src)
+			anc := residualResample(w, len(w), src)
 			if len(anc) != P {
 				t.Fatalf("vector %d: %d ancestors, want %d", k, len(anc), P)
 			}
@@ -1301,6 +1303,7 @@ func TestESS(t *testing.T) {
 	if err != nil {
 		t.Fatal(err)
 	}
+	ps.Build()
 	if got := ps.ESS(); math.Abs(got-100) > 1e-9 {
 		t.Errorf("ESS of equal weights = %v, want 100", got)
 	}
@@ -1350,7 +1353,7 @@ func TestDecodeRejectsInconsistentState(t *testing.T) {
 				t.Fatal(err)
 			}
 		}
-		ps.Settle()
+		ps.SettleRefit()                       // builds the population
 		if err := ps.Remove("b"); err != nil { // frees slot 1
 			t.Fatal(err)
 		}
@@ -1387,6 +1390,14 @@ func TestDecodeRejectsInconsistentState(t *testing.T) {
 			}},
 		{"log weight not a number", "ESS is NaN and the next increment turns every log weight NaN",
 			func(ps *Particles) { ps.logw[2] = math.NaN() }},
+		{"labels before the first build", "the build's chains start from states the population never had",
+			func(ps *Particles) { ps.built = false }},
+		{"placement record names a free segment", "a summary reads the kernel of a segment no product is in",
+			func(ps *Particles) {
+				ps.SettleRefit()
+				sf := ps.soft[0]
+				sf.Seg[0] = uint16(len(ps.parts[0].segs))
+			}},
 	}
 	for _, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
@@ -1404,8 +1415,8 @@ func TestDecodeRejectsInconsistentState(t *testing.T) {
 // benchmarks of the external test package: labelBytes counts every
 // distinct label buffer of the particle states once (2 bytes a slot, as
 // shared buffers are shared in memory), segmentBytes the segment records
-// and free-segment lists of every particle, keptBytes the draws kept by
-// the last settle for the summaries (labels and segment parameters).
+// and free-segment lists of every particle, keptBytes the placement
+// records of the last waste-free step kept for the summaries.
 // Test-only.
 func (ps *Particles) FootprintForTest() (labelBytes, segmentBytes, keptBytes int) {
 	seen := map[*labelBuf]bool{}
@@ -1416,9 +1427,9 @@ func (ps *Particles) FootprintForTest() (labelBytes, segmentBytes, keptBytes int
 		}
 		segmentBytes += len(st.segs)*int(unsafe.Sizeof(segment{})) + 2*len(st.free)
 	}
-	for _, k := range ps.kept {
-		for _, d := range k {
-			keptBytes += 2*len(d.Labels) + len(d.Segments)*int(unsafe.Sizeof(Theta{}))
+	for _, sf := range ps.soft {
+		if sf != nil {
+			keptBytes += 4*len(sf.Off) + 2*len(sf.Seg) + 4*len(sf.P) + int(unsafe.Sizeof(Mover{}))*len(sf.Movers)
 		}
 	}
 	return labelBytes, segmentBytes, keptBytes

@@ -25,9 +25,17 @@ type GibbsConfig struct {
 }
 
 // DefaultGibbsConfig returns m = 3 auxiliary segments and 1,500 sweeps,
-// 500 of them burn-in, keeping every 2nd: 500 draws.
+// 500 of them burn-in, keeping every 2nd (500 draws), half a split-merge
+// proposal per sweep and recorded placement probabilities.
+//
+// The split-merge rate: on simulated categories of 300 products with
+// overlapping segments (BenchmarkSplitMergeMixing) a proposal cost about
+// one sweep and was accepted 0.5 to 1.4% of the time; at 0.5 per sweep
+// the autocorrelation time of the number of segments, counted in CPU
+// seconds, fell tenfold where single-product moves were stuck and rose
+// by up to half elsewhere. Recording costs a few per cent of a sweep.
 func DefaultGibbsConfig() GibbsConfig {
-	return GibbsConfig{Prior: DefaultPrior(), Aux: 3, Sweeps: 1500, Burn: 500, Thin: 2}
+	return GibbsConfig{Prior: DefaultPrior(), Aux: 3, Sweeps: 1500, Burn: 500, Thin: 2, SplitMerge: 0.5, RaoBlackwell: true}
 }
 
 // maxSplitMerge bounds the split-merge proposals per sweep: each costs
@@ -114,13 +122,7 @@ func (g *Gibbs) sweepOnce(src *rand.Rand, record bool) {
 	} else {
 		st.scan(src, nil)
 	}
-	g.mem = st.members(g.mem)
-	for c := range st.segs {
-		if st.segs[c].size > 0 {
-			st.updateTheta(uint16(c), g.mem[c], src)
-		}
-	}
-	st.updateAlpha(src)
+	g.mem = st.updateKernelsAndAlpha(g.mem, src)
 	g.sweep++
 }
 

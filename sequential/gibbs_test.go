@@ -104,13 +104,7 @@ func gewekeZ(t *testing.T, sweepPrior, genPrior Prior, nProducts, l, m1, m2 int,
 		for i := range st.data {
 			st.reassign(i, src)
 		}
-		mem = st.members(mem)
-		for c := range st.segs {
-			if st.segs[c].size > 0 {
-				st.updateTheta(uint16(c), mem[c], src)
-			}
-		}
-		st.updateAlpha(src)
+		mem = st.updateKernelsAndAlpha(mem, src)
 	})
 }
 

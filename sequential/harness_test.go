@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"strings"
 	"sync"
 	"testing"
 	"time"
@@ -87,6 +88,11 @@ const (
 // floor of the comparison).
 func harnessReference(t testing.TB, data []*sequential.Datum, sweeps int, seed uint64) ([]sequential.Draw, float64) {
 	t.Helper()
+	key := referenceKey(data, sweeps, seed)
+	if v, ok := referenceCache.Load(key); ok {
+		r := v.(cachedReference)
+		return r.draws, r.spread
+	}
 	chains := make([][]sequential.Draw, referenceChains)
 	errs := make([]error, referenceChains)
 	var wg sync.WaitGroup
@@ -116,7 +122,27 @@ func harnessReference(t testing.TB, data []*sequential.Datum, sweeps int, seed u
 			spread = math.Max(spread, m)
 		}
 	}
+	referenceCache.Store(key, cachedReference{pool, spread})
 	return pool, spread
+}
+
+// referenceCache keeps the references of this test binary's run by data,
+// length and seed, so that runs comparing settings on the same data pay
+// for each reference once.
+var referenceCache sync.Map
+
+type cachedReference struct {
+	draws  []sequential.Draw
+	spread float64
+}
+
+func referenceKey(data []*sequential.Datum, sweeps int, seed uint64) string {
+	var b strings.Builder
+	fmt.Fprintf(&b, "%d/%d/", sweeps, seed)
+	for _, d := range data {
+		fmt.Fprintf(&b, "%d:%v;", d.L(), d.Values())
+	}
+	return b.String()
 }
 
 // posteriorFacts are the quantities the agreement levels compare.

@@ -13,6 +13,7 @@ import (
 	"fmt"
 	"math"
 	"math/rand/v2"
+	"os"
 	"runtime"
 	"slices"
 	"sync"
@@ -40,8 +41,10 @@ func overlapCategory(n int, seed uint64) []synth.Product {
 }
 
 // buildParticles adds the products one at a time, settling (default
-// budget) after every fifth, then mixes with full sweeps.
-func buildParticles(t testing.TB, cfg sequential.ParticleConfig, products []synth.Product, seed uint64, finalSweeps int) *sequential.Particles {
+// budget) after every fifth, then ends the refit: before the first build
+// the adds only record the products and the settles do nothing, so the
+// population comes from the batch chains of the build.
+func buildParticles(t testing.TB, cfg sequential.ParticleConfig, products []synth.Product, seed uint64) *sequential.Particles {
 	t.Helper()
 	ps, err := sequential.NewParticles(cfg, seed, 1)
 	if err != nil {
@@ -55,7 +58,7 @@ func buildParticles(t testing.TB, cfg sequential.ParticleConfig, products []synt
 			ps.Settle()
 		}
 	}
-	ps.SettleFull(finalSweeps)
+	ps.SettleRefit()
 	return ps
 }
 
@@ -195,7 +198,7 @@ func sharedReference(t *testing.T) *reference {
 		held := r.products[:n]
 		ids := productIDs(held)
 		for s := 0; s < R; s++ {
-			r.views = append(r.views, viewOf(t, buildParticles(t, r.cfg, held, uint64(101*(s+1)), 4), ids))
+			r.views = append(r.views, viewOf(t, buildParticles(t, r.cfg, held, uint64(101*(s+1))), ids))
 		}
 		pairs := 0.0
 		for i := range r.views {
@@ -279,7 +282,7 @@ func TestAddRemoveMatchesReference(t *testing.T) {
 	for k, c := range cases {
 		t.Run(c.name, func(t *testing.T) {
 			t.Parallel()
-			ps := buildParticles(t, r.cfg, held, uint64(303+k), 4)
+			ps := buildParticles(t, r.cfg, held, uint64(303+k))
 			e0 := ps.LogEvidence()
 			lp, err := ps.Add("extra", c.extra)
 			if err != nil {
@@ -323,7 +326,7 @@ func TestReplaceSameDatumUnchanged(t *testing.T) {
 	r := sharedReference(t)
 	held := r.held()
 	ids := productIDs(held)
-	ps := buildParticles(t, r.cfg, held, 404, 4)
+	ps := buildParticles(t, r.cfg, held, 404)
 	e0 := ps.LogEvidence()
 	for i := 0; i < len(held); i += 3 {
 		if _, err := ps.Replace(held[i].ID, held[i].Datum()); err != nil {
@@ -366,10 +369,16 @@ func newScript() *script {
 		}
 	}
 	settle := func(ps *sequential.Particles) error { ps.Settle(); return nil }
+	refitEnd := func(ps *sequential.Particles) error { ps.SettleRefit(); return nil }
 	for i := 0; i < 20; i++ {
 		s.steps = append(s.steps, add(i))
 		if i%4 == 3 {
 			s.steps = append(s.steps, settle)
+		}
+		if i == 9 {
+			// The first ten products are only recorded; this builds the
+			// population from batch chains, and the rest move it.
+			s.steps = append(s.steps, refitEnd)
 		}
 	}
 	for _, i := range []int{3, 7, 11, 2, 19} {
@@ -385,6 +394,7 @@ func newScript() *script {
 	for i := 20; i < 26; i++ {
 		s.steps = append(s.steps, add(i))
 	}
+	s.steps = append(s.steps, refitEnd)
 	s.steps = append(s.steps, settle, func(ps *sequential.Particles) error {
 		ps.SetRejuvenation(3, 0.5)
 		ps.Settle()
@@ -606,7 +616,7 @@ func TestDecodeParticlesErrors(t *testing.T) {
 	if len(panics) > 0 {
 		t.Errorf("%d of %d truncations panicked, at lengths %v", len(panics), len(b), panics)
 	}
-	for _, v := range []byte{0, 4, 255} {
+	for _, v := range []byte{0, 5, 255} {
 		bad := append([]byte{v}, b[1:]...)
 		if _, err, p := decodeRecover(bad); p != nil || !errors.Is(err, sequential.ErrEncoding) {
 			t.Errorf("version byte %d: err = %v, panic %v; want ErrEncoding", v, err, p)
@@ -641,15 +651,23 @@ func keepESSOffset(t *testing.T, b []byte) int {
 	return off
 }
 
-// TestDecodeOlderVersions reads encodings of versions 1 and 2 (state files
-// written before version 3 hold no keep-ess setting, before version 2 no
-// resampled-since-settle byte): they must decode as the same system with
-// keep-ess 0, so that every later Replace redraws as those versions did,
-// and with the flag clear for version 1; a system whose flag is set must
-// keep it through Encode and Decode.
+// TestDecodeOlderVersions reads state written before the waste-free
+// updater: testdata/particles-v3-small.bin and particles-v3-refit.bin are
+// version-3 encodings written by the release before it (the first the
+// small system of smallEncoding, built by adds with a Remove and a
+// Replace after its settle; the second 30 products after a refit-end
+// settle, with kept draws), and versions 2 and 1 are derived from the
+// first (version 2 has no keep-ess setting, version 1 no
+// resampled-since-settle byte either). Each must decode as a built system
+// holding the same products and data, with the new settings at their
+// defaults, keep-ess 0 below version 3, and go on: a Replace and a
+// refit end, then a summary, then Encode and Decode again.
 func TestDecodeOlderVersions(t *testing.T) {
 	t.Parallel()
-	b := smallEncoding(t)
+	b, err := os.ReadFile("testdata/particles-v3-small.bin")
+	if err != nil {
+		t.Fatal(err)
+	}
 	if b[0] != 3 {
 		t.Fatalf("encoding version %d, want 3", b[0])
 	}
@@ -658,40 +676,86 @@ func TestDecodeOlderVersions(t *testing.T) {
 		t.Fatalf("keep ess read at offset %d = %v, want smallEncoding's 0.5", off, got)
 	}
 	head, tail := b[2:off], b[off+8:]
-	zero := make([]byte, 8) // keep ess 0
 	join := func(parts ...[]byte) []byte { return bytes.Join(parts, nil) }
+	products := overlapCategory(8, 17)
+	check := func(name string, enc []byte, keepESS float64) {
+		t.Helper()
+		ps, err := sequential.DecodeParticles(enc, 1)
+		if err != nil {
+			t.Fatalf("%s: %v", name, err)
+		}
+		if !ps.Built() || ps.Len() != 7 || ps.NumParticles() != 6 {
+			t.Fatalf("%s: built %v, %d products, %d particles; want built, 7, 6", name, ps.Built(), ps.Len(), ps.NumParticles())
+		}
+		data := ps.Data()
+		for j, id := range ps.Products() {
+			i := slices.IndexFunc(products, func(p synth.Product) bool { return p.ID == id })
+			if i < 0 || i == 2 {
+				t.Fatalf("%s: unexpected product %q", name, id)
+			}
+			want := products[i].Datum()
+			if i == 4 {
+				want = products[5].Datum()
+			}
+			if !slices.Equal(data[j].Values(), want.Values()) || data[j].L() != want.L() {
+				t.Errorf("%s: product %s holds %v, want %v", name, id, data[j].Values(), want.Values())
+			}
+		}
+		re, err := sequential.DecodeParticles(ps.Encode(), 1)
+		if err != nil {
+			t.Fatalf("%s: re-encoded: %v", name, err)
+		}
+		if !bytes.Equal(re.Encode(), ps.Encode()) {
+			t.Errorf("%s: Encode, Decode, Encode changed the bytes", name)
+		}
+		if err := ps.SetKeepESS(keepESS); err != nil {
+			t.Fatal(err)
+		}
+		// The setting decoded must be keepESS: setting it again changes nothing.
+		if !bytes.Equal(ps.Encode(), re.Encode()) {
+			t.Errorf("%s: keep ess decoded is not %v", name, keepESS)
+		}
+		if _, err := ps.Replace(products[0].ID, products[1].Datum()); err != nil {
+			t.Fatalf("%s: Replace: %v", name, err)
+		}
+		ps.SettleRefit()
+		if _, err := ps.Summary(sequential.DefaultSummaryOptions()); err != nil {
+			t.Fatalf("%s: summary after the refit end: %v", name, err)
+		}
+		if _, err := sequential.DecodeParticles(ps.Encode(), 1); err != nil {
+			t.Fatalf("%s: after going on: %v", name, err)
+		}
+	}
+	check("version 3", b, 0.5)
 	for _, flag := range []byte{0, 1} {
-		v3 := join([]byte{3, flag}, head, b[off:off+8], tail)
-		ps, err := sequential.DecodeParticles(v3, 1)
-		if err != nil {
-			t.Fatalf("version 3 with flag %d: %v", flag, err)
-		}
-		if got := ps.Encode(); !bytes.Equal(got, v3) {
-			t.Errorf("version 3, flag %d: re-encoding differs from the input", flag)
-		}
-		v2 := join([]byte{2, flag}, head, tail)
-		ps, err = sequential.DecodeParticles(v2, 1)
-		if err != nil {
-			t.Fatalf("version 2 with flag %d: %v", flag, err)
-		}
-		if got, want := ps.Encode(), join([]byte{3, flag}, head, zero, tail); !bytes.Equal(got, want) {
-			t.Errorf("version 2, flag %d: did not decode to the same system with keep ess 0", flag)
-		}
+		check(fmt.Sprintf("version 2, flag %d", flag), join([]byte{2, flag}, head, tail), 0)
 	}
-	v1 := join([]byte{1}, head, tail)
-	ps, err := sequential.DecodeParticles(v1, 1)
-	if err != nil {
-		t.Fatalf("version 1: %v", err)
-	}
-	if got, want := ps.Encode(), join([]byte{3, 0}, head, zero, tail); !bytes.Equal(got, want) {
-		t.Error("version 1 did not decode to the same system with the flag clear and keep ess 0")
-	}
+	check("version 1", join([]byte{1}, head, tail), 0)
 	if _, err := sequential.DecodeParticles(join([]byte{3, 2}, head, b[off:off+8], tail), 1); !errors.Is(err, sequential.ErrEncoding) {
 		t.Errorf("flag byte 2: err = %v, want ErrEncoding", err)
 	}
 	bad := join([]byte{3, 0}, head, binary.LittleEndian.AppendUint64(nil, math.Float64bits(1.5)), tail)
 	if _, err := sequential.DecodeParticles(bad, 1); !errors.Is(err, sequential.ErrEncoding) {
 		t.Errorf("keep ess 1.5: err = %v, want ErrEncoding", err)
+	}
+
+	refit, err := os.ReadFile("testdata/particles-v3-refit.bin")
+	if err != nil {
+		t.Fatal(err)
+	}
+	ps, err := sequential.DecodeParticles(refit, 1)
+	if err != nil {
+		t.Fatalf("version 3 with kept draws: %v", err)
+	}
+	if ps.Len() != 30 || ps.NumParticles() != 16 || !ps.Built() {
+		t.Fatalf("version 3 with kept draws: %d products, %d particles, built %v", ps.Len(), ps.NumParticles(), ps.Built())
+	}
+	if _, err := ps.Summary(sequential.DefaultSummaryOptions()); err != nil {
+		t.Fatalf("version 3 with kept draws: summary: %v", err)
+	}
+	ps.SettleRefit()
+	if d := ps.Draws(); d[0].Soft == nil {
+		t.Error("after a refit end the draws carry no placement records")
 	}
 }
 
@@ -834,25 +898,15 @@ func getBenchSystem(b *testing.B, n, refits int, drift float64) *benchSystem {
 	if err != nil {
 		b.Fatal(err)
 	}
-	// Adds with a cheap settle (no moves; it only clears the touched set,
-	// which keeps resampling cheap) every 64 products and a one-sweep
-	// settle every 512; then two full sweeps.
+	// The adds only record the products; the refit end builds the
+	// population from batch chains, as a new category's first refit does.
 	for i := range first {
 		bs.ids = append(bs.ids, first[i].ID)
 		if _, err := ps.Add(first[i].ID, first[i].Datum()); err != nil {
 			b.Fatal(err)
 		}
-		switch {
-		case (i+1)%512 == 0:
-			ps.SetRejuvenation(1, 0)
-			ps.Settle()
-		case (i+1)%64 == 0:
-			ps.SetRejuvenation(0, 0)
-			ps.Settle()
-		}
 	}
-	ps.SetRejuvenation(pc.Sweeps, pc.RandomShare)
-	ps.SettleFull(2)
+	ps.SettleRefit()
 	bs.encoding = ps.Encode()
 	for r := 1; r <= refits; r++ {
 		prods := seq.Refit(r)
@@ -919,12 +973,21 @@ func BenchmarkReplace(b *testing.B) {
 }
 
 func benchReplace(b *testing.B, drift, keepESS float64) {
-	ps, bs := benchDecode(b, 1000, drift, 1, keepESS)
+	ps, _ := benchDecode(b, 1000, drift, 1, keepESS)
+	benchReplaceLatency(b, drift, keepESS, ps, nil)
+}
+
+// benchReplaceLatency times b.N Replaces on ps (the bench system of 1,000
+// products), each followed by after when it is not nil, and reports the
+// mean and the 50th and 99th percentiles of a change's time. Without
+// after, a settle runs every 256 replaces outside the timer.
+func benchReplaceLatency(b *testing.B, drift, keepESS float64, ps *sequential.Particles, after func()) {
+	bs := getBenchSystem(b, 1000, 2, drift)
 	n := len(bs.ids)
 	lat := make([]time.Duration, 0, b.N)
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
-		if i > 0 && i%256 == 0 {
+		if after == nil && i > 0 && i%256 == 0 {
 			b.StopTimer()
 			ps.Settle()
 			b.StartTimer()
@@ -933,14 +996,38 @@ func benchReplace(b *testing.B, drift, keepESS float64) {
 		if _, err := ps.Replace(bs.ids[i%n], bs.refits[(i/n)%2][i%n]); err != nil {
 			b.Fatal(err)
 		}
+		if after != nil {
+			after()
+		}
 		lat = append(lat, time.Since(t0))
 	}
-	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N), "ns/replace")
-	// The median excludes the replaces that also resample (about one in
-	// fifty); the mean above includes them.
+	b.ReportMetric(float64(b.Elapsed().Nanoseconds())/float64(b.N), "ns/change")
+	// The median leaves out the few changes that also resample or renew
+	// the population; the mean above includes them.
 	slices.Sort(lat)
-	b.ReportMetric(float64(lat[len(lat)/2].Nanoseconds()), "p50-ns")
-	b.ReportMetric(float64(lat[len(lat)*99/100].Nanoseconds()), "p99-ns")
+	b.ReportMetric(float64(lat[len(lat)/2].Nanoseconds())/1e6, "p50-ms")
+	b.ReportMetric(float64(lat[len(lat)*99/100].Nanoseconds())/1e6, "p99-ms")
+}
+
+// BenchmarkSingleChange measures one product's change as a stream of
+// single changes needs it to stay right: a Replace and a Settle (which
+// runs a waste-free step whenever the diversity watch calls for one), on
+// P = 256 particles over 1,000 products with one worker, and reports the
+// median and the 99th percentile over the changes as well as how many
+// waste-free steps the watch ran.
+func BenchmarkSingleChange(b *testing.B) {
+	b.Run("redraw", func(b *testing.B) { benchSingleChange(b, 0, 0) })
+	b.Run("reestimate", func(b *testing.B) { benchSingleChange(b, benchDrift, 0) })
+	b.Run("reestimate-keeping", func(b *testing.B) { benchSingleChange(b, benchDrift, benchKeepESS) })
+}
+
+func benchSingleChange(b *testing.B, drift, keepESS float64) {
+	var steps uint64
+	ps, _ := benchDecode(b, 1000, drift, 1, keepESS)
+	start := ps.LastStep().Seq
+	benchReplaceLatency(b, drift, keepESS, ps, func() { ps.Settle() })
+	steps = ps.LastStep().Seq - start
+	b.ReportMetric(float64(steps), "waste-free-steps")
 }
 
 // BenchmarkReplaceWithSettle is BenchmarkReplace with the settle (default

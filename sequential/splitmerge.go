@@ -152,14 +152,6 @@ func (s *State) allocate(i, j int, inPart1 func(int) bool, src *rand.Rand) (logP
 	return logP, parts[0].th, parts[1].th
 }
 
-// log1pExp returns log(1 + e^x) without overflow.
-func log1pExp(x float64) float64 {
-	if x > 35 {
-		return x
-	}
-	return math.Log1p(math.Exp(x))
-}
-
 // blockCountLogLik returns the log marginal probability of the members'
 // counts as one segment with p integrated out, without the C(L, n)
 // factors (they are the same for any partition): log B(pa + A, pb + B) -

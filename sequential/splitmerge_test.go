@@ -163,13 +163,7 @@ func TestGewekeSplitMerge(t *testing.T) {
 		for i := range st.data {
 			st.reassign(i, src)
 		}
-		mem = st.members(mem)
-		for c := range st.segs {
-			if st.segs[c].size > 0 {
-				st.updateTheta(uint16(c), mem[c], src)
-			}
-		}
-		st.updateAlpha(src)
+		mem = st.updateKernelsAndAlpha(mem, src)
 	}
 	worst := func(z []float64) float64 {
 		w := 0.0

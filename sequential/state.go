@@ -18,7 +18,11 @@ const MaxSegments = math.MaxUint16 - 1
 type segment struct {
 	theta Theta
 	kern  kernel
-	size  int
+	// memo is shared by the copies of this segment that resampling makes,
+	// until one of them sets a new theta: a change of data scores the
+	// datum once per distinct kernel (Particles.memoValues).
+	memo *kernelMemo
+	size int
 	// reported and considered are the count totals A = sum n_j and
 	// A + B = sum L_j of the members; p is integrated out against them.
 	reported, considered int
@@ -27,6 +31,15 @@ type segment struct {
 func (s *segment) setTheta(t Theta) {
 	s.theta = t
 	s.kern = t.kernel()
+	s.memo = &kernelMemo{kern: s.kern}
+}
+
+// kernelMemo holds one kernel's value log densities of the data of the
+// operation numbered op (see Particles.memoValues).
+type kernelMemo struct {
+	kern kernel
+	op   uint64
+	v    [2]float64
 }
 
 // labelBuf is a copy-on-write assignment vector shared between states
@@ -165,7 +178,14 @@ func (s *State) leave(i int, d *Datum) (c uint16, emptied bool) {
 // auxiliary thetas in s.aux, log(alpha/m) + log f(d | aux, empty counts).
 // The candidate label of an auxiliary term is Absent. It returns the log
 // of the sum of the terms.
-func (s *State) predictiveTerms(d *Datum) float64 {
+func (s *State) predictiveTerms(d *Datum) float64 { return s.terms(d, -1) }
+
+// predictiveTermsMemo is predictiveTerms with each occupied segment's
+// value log density read from its memo slot j, filled for d by
+// Particles.memoValues; the auxiliaries are scored as usual.
+func (s *State) predictiveTermsMemo(d *Datum, j int) float64 { return s.terms(d, j) }
+
+func (s *State) terms(d *Datum, memo int) float64 {
 	s.logw = s.logw[:0]
 	s.cand = s.cand[:0]
 	pa, pb := s.prior.CountA, s.prior.CountB
@@ -175,7 +195,13 @@ func (s *State) predictiveTerms(d *Datum) float64 {
 		if g.size == 0 {
 			continue
 		}
-		w := d.sizeCountLogPred(g.size, g.reported, g.considered, pa, pb) + d.valueLogLik(&g.kern)
+		var v float64
+		if memo >= 0 {
+			v = g.memo.v[memo]
+		} else {
+			v = d.valueLogLik(&g.kern)
+		}
+		w := d.sizeCountLogPred(g.size, g.reported, g.considered, pa, pb) + v
 		s.logw = append(s.logw, w)
 		s.cand = append(s.cand, uint16(c))
 		if w > maxw {
@@ -410,6 +436,20 @@ func (s *State) updateTheta(c uint16, mem []int, src *rand.Rand) {
 		}
 	}
 	g.setTheta(t)
+}
+
+// updateKernelsAndAlpha refreshes every occupied segment's kernel
+// (updateTheta) and then alpha: the second half of a sweep. mem is reused
+// for the member lists and returned.
+func (s *State) updateKernelsAndAlpha(mem [][]int, src *rand.Rand) [][]int {
+	mem = s.members(mem)
+	for c := range s.segs {
+		if s.segs[c].size > 0 {
+			s.updateTheta(uint16(c), mem[c], src)
+		}
+	}
+	s.updateAlpha(src)
+	return mem
 }
 
 // updateAlpha draws alpha given the number of segments K and products N

@@ -3,9 +3,7 @@ package sequential
 import (
 	"fmt"
 	"math"
-	"runtime"
 	"sort"
-	"sync"
 
 	"gonum.org/v1/gonum/stat/distuv"
 )
@@ -24,6 +22,10 @@ type SummaryOptions struct {
 	// Prior supplies the Beta(CountA, CountB) prior of the report
 	// probability p used by SegmentSummary.MeanReported.
 	Prior Prior
+	// Workers is the number of goroutines over products for the
+	// next-value summaries; 0 means GOMAXPROCS. Results do not depend on
+	// it.
+	Workers int
 }
 
 // DefaultSummaryOptions returns threshold 0.25, the 10% to 90% interval,
@@ -389,35 +391,27 @@ func (m orderMedians) of(ew ExpWeibull, l int) [3]float64 {
 // nextSummaries mixes the next-value law of every product over the draws.
 func nextSummaries(draws []Draw, w []float64, data []*Datum, opt SummaryOptions) []NextSummary {
 	out := make([]NextSummary, len(data))
-	// Products are independent: split them over the cores, each worker
-	// writing only its own entries, so the result does not depend on
-	// the number of workers.
-	workers := min(runtime.GOMAXPROCS(0), max(len(data)/64, 1))
-	var wg sync.WaitGroup
-	chunk := (len(data) + workers - 1) / workers
-	for lo := 0; lo < len(data); lo += chunk {
-		hi := min(lo+chunk, len(data))
-		wg.Add(1)
-		go func() {
-			defer wg.Done()
-			var mix MixedNext
-			for i := lo; i < hi; i++ {
-				di := data[i]
-				mix.fill(draws, w, di, i)
-				ns := NextSummary{Defined: mix.Defined(), Threshold: opt.Threshold}
-				if !ns.Defined {
-					ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
-				} else {
-					ns.PExceed = mix.Exceed(opt.Threshold)
-					ns.Median = mix.Quantile(0.5)
-					ns.Lo = mix.Quantile(opt.QuantileLo)
-					ns.Hi = mix.Quantile(opt.QuantileHi)
-				}
-				out[i] = ns
+	// Products are independent: split them in chunks over the cores, each
+	// writing only its own entries, so the result does not depend on the
+	// number of workers.
+	const chunk = 64
+	parallelFor(opt.Workers, (len(data)+chunk-1)/chunk, func(c int) {
+		var mix MixedNext
+		for i := c * chunk; i < min((c+1)*chunk, len(data)); i++ {
+			di := data[i]
+			mix.fill(draws, w, di, i)
+			ns := NextSummary{Defined: mix.Defined(), Threshold: opt.Threshold}
+			if !ns.Defined {
+				ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
+			} else {
+				ns.PExceed = mix.Exceed(opt.Threshold)
+				ns.Median = mix.Quantile(0.5)
+				ns.Lo = mix.Quantile(opt.QuantileLo)
+				ns.Hi = mix.Quantile(opt.QuantileHi)
 			}
-		}()
-	}
-	wg.Wait()
+			out[i] = ns
+		}
+	})
 	return out
 }
 

@@ -389,7 +389,7 @@ func (l *lockedWriter) String() string {
 func binaryServiceConfig() ServiceConfig {
 	cfg := DefaultServiceConfig()
 	cfg.Worker.Particles.Particles = 32
-	cfg.Worker.Particles.RefitSweeps = 2
+	cfg.Worker.Particles.BuildBurn = 20
 	cfg.Worker.BatchSize = 16
 	cfg.FetchSize = 8
 	cfg.FetchWait = 50 * time.Millisecond
@@ -400,7 +400,7 @@ func binaryServiceConfig() ServiceConfig {
 var binaryServeFlags = []string{"--http-addr", "", "--particles", "32", "--batch", "16", "--fetch", "8",
 	"--fetch-wait", "50ms", "--log-level", "info"}
 
-const binaryModelYAML = "defaults:\n  refit_sweeps: 2\n"
+const binaryModelYAML = "defaults:\n  build_burn: 20\n"
 
 // waitAcked polls the consumer until its ack floor reaches seq while p
 // runs.

@@ -42,6 +42,7 @@ type Metrics struct {
 	settle    prometheus.Histogram
 	commit    prometheus.Histogram
 	essRatio  *prometheus.GaugeVec
+	distinct  *prometheus.GaugeVec
 	segments  *prometheus.GaugeVec
 	moves     *prometheus.CounterVec
 	alerts    *prometheus.CounterVec
@@ -84,6 +85,10 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 		essRatio: prometheus.NewGaugeVec(prometheus.GaugeOpts{
 			Name: "rivalmix_ess_ratio",
 			Help: "Effective sample size of the category's particles divided by their number, in (0, 1], at the last refit.",
+		}, []string{"category"}),
+		distinct: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "rivalmix_distinct_states_ratio",
+			Help: "Distinct partitions among the category's particles divided by their number, in (0, 1], at the last refit (the updater renews its particles between refits when this falls below diversity_floor).",
 		}, []string{"category"}),
 		segments: prometheus.NewGaugeVec(prometheus.GaugeOpts{
 			Name: "rivalmix_segments",
@@ -132,7 +137,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 		}, consumerPending))
 	}
 	if reg != nil {
-		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
+		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
 			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries)
 		reg.MustRegister(m.gaugeFunc...)
 	}
@@ -169,7 +174,8 @@ func (m *Metrics) ObserveCommit(d time.Duration) { m.commit.Observe(d.Seconds())
 
 // ObserveRefit records a completed refit: it counts the refit, its moved
 // and missed events, and sets the category's segment count, its ESS ratio
-// (rep.ESS / particles, skipped when particles <= 0) and its mean surprise
+// and distinct-states ratio (rep.ESS and rep.Distinct over particles,
+// skipped when particles <= 0) and its mean surprise
 // (skipped when the refit changed no datum or the value is not finite).
 func (m *Metrics) ObserveRefit(rep category.RefitReport, particles int) {
 	cat := rep.Category
@@ -177,6 +183,7 @@ func (m *Metrics) ObserveRefit(rep category.RefitReport, particles int) {
 	m.segments.WithLabelValues(cat).Set(float64(len(rep.Summary.Segments)))
 	if particles > 0 {
 		m.essRatio.WithLabelValues(cat).Set(rep.ESS / float64(particles))
+		m.distinct.WithLabelValues(cat).Set(float64(rep.Distinct) / float64(particles))
 	}
 	if rep.Changes > 0 && !math.IsNaN(rep.MeanSurprise) && !math.IsInf(rep.MeanSurprise, 0) {
 		m.surprise.WithLabelValues(cat).Set(rep.MeanSurprise)

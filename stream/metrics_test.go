@@ -42,7 +42,7 @@ func TestMetrics(t *testing.T) {
 	m.ObserveRefit(category.RefitReport{Category: "cereal", Refit: "2026-W49", ESS: 128, MeanSurprise: math.NaN(),
 		Summary: rep.Summary}, 256)
 
-	for _, c := range []prometheus.Collector{m.messages, m.update, m.settle, m.commit, m.essRatio, m.segments,
+	for _, c := range []prometheus.Collector{m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
 		m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.gaugeFunc[0], m.gaugeFunc[1]} {
 		problems, err := testutil.CollectAndLint(c)
 		if err != nil {

@@ -53,8 +53,7 @@ import (
 func testServiceConfig() ServiceConfig {
 	cfg := DefaultServiceConfig()
 	cfg.Worker.Particles.Particles = 32
-	cfg.Worker.Particles.RefitSweeps = 2
-	cfg.Worker.Particles.KeepSweeps = 1
+	cfg.Worker.Particles.BuildBurn = 20
 	cfg.Worker.BatchSize = 16
 	cfg.FetchSize = 8
 	cfg.FetchWait = 50 * time.Millisecond
@@ -567,8 +566,9 @@ func TestServiceEndToEnd(t *testing.T) {
 	e, js, cfg := newTestBus(t, ctx)
 	cereal := newTestCategory("breakfast-cereal", 48, 1001, 11)
 	tea := newTestCategory("tea", 24, 3001, 12)
-	// Tea's refits keep assignments when the weights allow, so that both
-	// forms of a refit reach the metrics.
+	// Cereal's refits always redraw and tea's keep assignments when the
+	// weights allow, so that both forms of a refit reach the metrics.
+	cfg.Worker.Particles.KeepESS = 0
 	teaCfg := cfg.Worker
 	teaCfg.Particles.KeepESS = 0.5
 	cfg.PerCategory = map[string]category.WorkerConfig{tea.name: teaCfg}

@@ -68,8 +68,14 @@ type modelSettings struct {
 	Particles        *int     `yaml:"particles"`
 	Competitors      *int     `yaml:"competitors"`
 	BatchSize        *int     `yaml:"batch_size"`
-	RefitSweeps      *int     `yaml:"refit_sweeps"`
 	KeepESS          *float64 `yaml:"keep_ess"`
+	SplitMerge       *float64 `yaml:"split_merge"`
+	BuildChains      *int     `yaml:"build_chains"`
+	BuildBurn        *int     `yaml:"build_burn"`
+	RefitBurn        *int     `yaml:"refit_burn"`
+	MinChains        *int     `yaml:"min_chains"`
+	RenewBelow       *float64 `yaml:"renew_below"`
+	DiversityFloor   *float64 `yaml:"diversity_floor"`
 	BatchSweeps      *int     `yaml:"batch_sweeps"`
 	RandomShare      *float64 `yaml:"random_share"`
 	ESSFraction      *float64 `yaml:"ess_fraction"`
@@ -100,8 +106,26 @@ func (s modelSettings) apply(w category.WorkerConfig) (category.WorkerConfig, er
 	if s.BatchSize != nil {
 		w.BatchSize = *s.BatchSize
 	}
-	if s.RefitSweeps != nil {
-		w.Particles.RefitSweeps = *s.RefitSweeps
+	if s.SplitMerge != nil {
+		w.Particles.SplitMerge = *s.SplitMerge
+	}
+	if s.BuildChains != nil {
+		w.Particles.BuildChains = *s.BuildChains
+	}
+	if s.BuildBurn != nil {
+		w.Particles.BuildBurn = *s.BuildBurn
+	}
+	if s.RefitBurn != nil {
+		w.Particles.RefitBurn = *s.RefitBurn
+	}
+	if s.MinChains != nil {
+		w.Particles.MinChains = *s.MinChains
+	}
+	if s.RenewBelow != nil {
+		w.Particles.RenewBelow = *s.RenewBelow
+	}
+	if s.DiversityFloor != nil {
+		w.Particles.DiversityFloor = *s.DiversityFloor
 	}
 	if s.BatchSweeps != nil {
 		w.Particles.Sweeps = *s.BatchSweeps

@@ -3,7 +3,6 @@ package main
 import (
 	"context"
 	"encoding/json"
-	"errors"
 	"fmt"
 	"io"
 	"math"
@@ -35,8 +34,9 @@ type fitConfig struct {
 	quiet             bool
 	method            string
 	particles         int
-	settleEvery       int
-	finalSweeps       int
+	buildChains       int
+	buildBurn         int
+	splitMerge        float64
 }
 
 func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error {
@@ -57,10 +57,12 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	fs.IntVar(&c.competitors, "competitors", input.DefaultCompetitors, "candidate competitors L for messages that do not say")
 	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
 	fs.StringVar(&c.rejected, "rejected", "", "also write rejected lines with their reasons to this file (one JSON object per line)")
-	fs.StringVar(&c.method, "method", "gibbs", "gibbs (batch sampler) or particles (the sequential updater fed one product at a time)")
-	fs.IntVar(&c.particles, "particles", sequential.DefaultParticleConfig().Particles, "particles, with --method particles")
-	fs.IntVar(&c.settleEvery, "settle-every", 256, "with --method particles: settle (resample and rejuvenate) after this many products")
-	fs.IntVar(&c.finalSweeps, "final-sweeps", 10, "with --method particles: rejuvenation sweeps over all products at the end")
+	fs.StringVar(&c.method, "method", "gibbs", "gibbs (batch sampler) or particles (the sequential updater's first population, as a new category gets it)")
+	fs.Float64Var(&c.splitMerge, "split-merge", def.SplitMerge, "split-merge proposals per sweep (whole-segment moves; 0 turns them off)")
+	pdef := sequential.DefaultParticleConfig()
+	fs.IntVar(&c.particles, "particles", pdef.Particles, "with --method particles: the population's size")
+	fs.IntVar(&c.buildChains, "build-chains", pdef.BuildChains, "with --method particles: batch chains that make the population")
+	fs.IntVar(&c.buildBurn, "build-burn", pdef.BuildBurn, "with --method particles: burn-in sweeps of each chain")
 	if err := parseFlags(fs, args); err != nil {
 		return err
 	}
@@ -71,7 +73,7 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 		c.category = strings.TrimSuffix(filepath.Base(c.in), filepath.Ext(c.in))
 	}
 	gc := def
-	gc.Sweeps, gc.Burn, gc.Thin = c.sweeps, c.burn, c.thin
+	gc.Sweeps, gc.Burn, gc.Thin, gc.SplitMerge = c.sweeps, c.burn, c.thin, c.splitMerge
 	if err := gc.Validate(); err != nil {
 		return fmt.Errorf("fit: %w", err)
 	}
@@ -157,36 +159,34 @@ func fitGibbs(ctx context.Context, c fitConfig, gc sequential.GibbsConfig, cat *
 	return draws, nil
 }
 
-// fitParticles feeds the products one at a time through the sequential
-// updater, settling every settleEvery products and once more at the end
-// with finalSweeps passes over all products.
+// fitParticles makes the sequential updater's first population for the
+// products, as the service does at a new category's first refit end: the
+// states of batch chains, weight 1 each.
 func fitParticles(ctx context.Context, c fitConfig, cat *categoryData, stderr io.Writer) ([]sequential.Draw, error) {
 	pc := sequential.DefaultParticleConfig()
-	pc.Particles = c.particles
-	pc.RefitSweeps = c.finalSweeps
-	if c.settleEvery < 1 || c.finalSweeps < 0 {
-		return nil, errors.New("fit: --settle-every must be >= 1 and --final-sweeps >= 0")
-	}
+	pc.Particles, pc.BuildChains, pc.BuildBurn, pc.SplitMerge = c.particles, c.buildChains, c.buildBurn, c.splitMerge
 	ps, err := sequential.NewParticles(pc, c.seed, 0x5eed)
 	if err != nil {
 		return nil, fmt.Errorf("fit: %w", err)
 	}
-	start := time.Now()
 	for i, id := range cat.ids {
-		if err := ctx.Err(); err != nil {
-			return nil, err
-		}
 		if _, err := ps.Add(id, *cat.data[i]); err != nil {
 			return nil, fmt.Errorf("fit: product %s: %w", id, err)
 		}
-		if (i+1)%c.settleEvery == 0 {
-			ps.Settle()
-			fmt.Fprintf(stderr, "updating: %d/%d products, ESS %.0f of %d, %d ancestors, %.1fs\n",
-				i+1, len(cat.ids), ps.ESS(), ps.NumParticles(), ps.Diversity(), time.Since(start).Seconds())
-		}
 	}
-	ps.SettleRefit()
-	fmt.Fprintf(stderr, "updating: done, ESS %.0f of %d, %.1fs\n", ps.ESS(), ps.NumParticles(), time.Since(start).Seconds())
+	if err := ctx.Err(); err != nil {
+		return nil, err
+	}
+	start := time.Now()
+	if !c.quiet {
+		fmt.Fprintf(stderr, "building: %d particles from %d chains of %d burn-in sweeps over %d products\n",
+			pc.Particles, min(pc.BuildChains, pc.Particles), pc.BuildBurn, len(cat.ids))
+	}
+	ps.Build()
+	if !c.quiet {
+		st := ps.LastStep()
+		fmt.Fprintf(stderr, "building: done, %d distinct partitions of %d, %.1fs\n", st.Distinct, ps.NumParticles(), time.Since(start).Seconds())
+	}
 	return ps.Draws(), nil
 }
 

@@ -32,7 +32,7 @@ func TestFitWritesContract(t *testing.T) {
 			t.Parallel()
 			out := filepath.Join(t.TempDir(), "p.json")
 			args := []string{"fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", out,
-				"--method", method, "--sweeps", "60", "--burn", "20", "--thin", "2", "--particles", "32", "--final-sweeps", "2", "--similarity"}
+				"--method", method, "--sweeps", "60", "--burn", "20", "--thin", "2", "--particles", "32", "--build-chains", "4", "--build-burn", "20", "--similarity"}
 			stdout, _, err := execute(t, args...)
 			if err != nil {
 				t.Fatal(err)
@@ -195,5 +195,52 @@ func TestSettingsFile(t *testing.T) {
 	f.configFile = bad
 	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "particle") {
 		t.Errorf("unknown key: err = %v", err)
+	}
+}
+
+// TestExampleSettingsFile loads testdata/larkfield-settings.yaml, the
+// example README points to: every key it sets must reach the worker
+// config (the values there are the defaults, so each is checked against
+// what the file says, and the category's overrides against theirs), and a
+// key an earlier release read names what replaced it.
+func TestExampleSettingsFile(t *testing.T) {
+	t.Parallel()
+	f := serviceFlags{configFile: "../../testdata/larkfield-settings.yaml", particles: 999, batch: 999, fetch: 256, fetchWait: 1, seed: 1, replicas: 1,
+		events: alerts.DefaultCloudEventConfig()}
+	sc, err := f.serviceConfig()
+	if err != nil {
+		t.Fatal(err)
+	}
+	w, pc := sc.Worker, sc.Worker.Particles
+	checks := []struct {
+		key       string
+		got, want float64
+	}{
+		{"particles", float64(pc.Particles), 256}, {"competitors", float64(w.Competitors), 10},
+		{"batch_size", float64(w.BatchSize), 256}, {"threshold", w.Alerts.Threshold, 0.25},
+		{"alert_probability", w.Alerts.AlertProb, 0.5}, {"move_in", w.Alerts.MoveIn, 0.6}, {"move_out", w.Alerts.MoveOut, 0.4},
+		{"keep_ess", pc.KeepESS, 0.5}, {"split_merge", pc.SplitMerge, 0.5}, {"build_chains", float64(pc.BuildChains), 16},
+		{"build_burn", float64(pc.BuildBurn), 150}, {"min_chains", float64(pc.MinChains), 16}, {"refit_burn", float64(pc.RefitBurn), 50},
+		{"renew_below", pc.RenewBelow, 0.05}, {"diversity_floor", pc.DiversityFloor, 0.25},
+		{"batch_sweeps", float64(pc.Sweeps), 2}, {"random_share", pc.RandomShare, 0.1}, {"ess_fraction", pc.ESSFraction, 0.5},
+		{"alpha_prior.shape", pc.Prior.AlphaShape, 1}, {"alpha_prior.rate", pc.Prior.AlphaRate, 1},
+	}
+	for _, c := range checks {
+		if c.got != c.want {
+			t.Errorf("%s: %v, the file says %v", c.key, c.got, c.want)
+		}
+	}
+	cereal := sc.PerCategory["breakfast-cereal"]
+	if cereal.Alerts.Threshold != 0.3 || cereal.Summary.Threshold != 0.3 || cereal.Particles.Particles != 128 {
+		t.Errorf("breakfast-cereal: threshold %v/%v, particles %d; the file says 0.3 and 128",
+			cereal.Alerts.Threshold, cereal.Summary.Threshold, cereal.Particles.Particles)
+	}
+	old := filepath.Join(t.TempDir(), "old.yaml")
+	if err := os.WriteFile(old, []byte("defaults:\n  refit_sweeps: 10\n"), 0o644); err != nil {
+		t.Fatal(err)
+	}
+	f.configFile = old
+	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "refit_sweeps was removed") || !strings.Contains(err.Error(), "min_chains") {
+		t.Errorf("removed key: err = %v, want it named with what replaced it", err)
 	}
 }

@@ -80,6 +80,12 @@ func checkSettingsFile(doc *yaml.Node) error {
 	return nil
 }
 
+// removedSettings are keys earlier releases read, with what replaced them.
+var removedSettings = map[string]string{
+	"refit_sweeps": "a refit's end now runs a waste-free step of as many MCMC steps as there are particles; min_chains shapes it",
+	"keep_sweeps":  "the states of the refit end's waste-free step are the draws the summaries use",
+}
+
 // checkModelSettings checks one settings block at path.
 func checkModelSettings(n *yaml.Node, path string, kinds map[string]string) error {
 	if n.Kind == yaml.ScalarNode && n.Tag == "!!null" {
@@ -91,6 +97,9 @@ func checkModelSettings(n *yaml.Node, path string, kinds map[string]string) erro
 	for i := 0; i+1 < len(n.Content); i += 2 {
 		k, v := n.Content[i], n.Content[i+1]
 		kind, ok := kinds[k.Value]
+		if why, gone := removedSettings[k.Value]; gone {
+			return fmt.Errorf("line %d: %s: %s was removed: %s", k.Line, path, k.Value, why)
+		}
 		if !ok {
 			known := make([]string, 0, len(kinds))
 			for key := range kinds {

@@ -18,8 +18,11 @@ type RefitReport struct {
 	Alerts          alerts.Outcome
 	ESS             float64
 	Diversity       int
-	MeanSurprise    float64 // NaN when the refit changed no datum
-	Changes         int     // data changes since the previous refit
+	// Distinct is the number of distinct partitions among the particles
+	// (the diversity watch's count; see sequential.Particles.DistinctStates).
+	Distinct     int
+	MeanSurprise float64 // NaN when the refit changed no datum
+	Changes      int     // data changes since the previous refit
 }
 
 // CompleteRefit ends a refit: the refit-sized rejuvenation, the posterior
@@ -40,6 +43,7 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	rep.Products = w.ps.Products()
 	rep.ESS = w.ps.ESS()
 	rep.Diversity = w.ps.Diversity()
+	rep.Distinct = w.ps.DistinctStates()
 	rep.MeanSurprise = math.NaN() // no datum changed: the summary omits it
 	if w.surpriseN > 0 {
 		rep.MeanSurprise = w.surpriseSum / float64(w.surpriseN)
@@ -79,6 +83,7 @@ func (w *Worker) Current() (RefitReport, error) {
 	rep.Products = w.ps.Products()
 	rep.ESS = w.ps.ESS()
 	rep.Diversity = w.ps.Diversity()
+	rep.Distinct = w.ps.DistinctStates()
 	// Evaluating the last refit again against the memory it produced
 	// gives the labels it reported; the outcome's memory is discarded.
 	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{

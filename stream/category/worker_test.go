@@ -44,7 +44,7 @@ func alternatingMoves(t *testing.T, noBand bool) int {
 	seq := synth.NewSequence(cfg, 8, 0, src)
 	wc := DefaultWorkerConfig()
 	wc.Particles.Particles = 32
-	wc.Particles.RefitSweeps, wc.Particles.KeepSweeps = 4, 2
+	wc.Particles.BuildChains, wc.Particles.BuildBurn = 4, 20
 	if noBand {
 		wc.Alerts.MoveIn, wc.Alerts.MoveOut, wc.Alerts.Confirm = 0.5, 0.49, 1
 	}
