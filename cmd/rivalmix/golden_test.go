@@ -5,8 +5,10 @@ import (
 	"encoding/json"
 	"flag"
 	"fmt"
+	"maps"
 	"os"
 	"path/filepath"
+	"slices"
 	"strings"
 	"testing"
 
@@ -150,5 +152,59 @@ func TestLineDiff(t *testing.T) {
 	}
 	if got := lineDiff("x\ny\nz", "1\n2\n3", 2); !strings.Contains(got, "... and 4 more differing lines") {
 		t.Errorf("limited lineDiff = %q", got)
+	}
+}
+
+// TestReplayPosterior: replay --posterior writes, after the last refit,
+// a file with exactly the fields of fit's posterior.json, over the
+// products of that refit (the fixture's last refit withdraws one product
+// of the category), with the N x N matrix when --similarity is given; and
+// an input with several categories needs --category.
+func TestReplayPosterior(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	post, fitOut := filepath.Join(dir, "posterior.json"), filepath.Join(dir, "fit.json")
+	code, _, stderr := runLine(t, "replay", "--in", "../../testdata/larkfield-refits.jsonl", "--out", filepath.Join(dir, "events.jsonl"),
+		"--category", "breakfast-cereal", "--particles", "16", "--seed", "7", "--time", "2026-11-30T06:00:00Z", "--quiet",
+		"--posterior", post, "--similarity")
+	if code != 0 {
+		t.Fatalf("replay: exit %d: %s", code, stderr)
+	}
+	code, _, stderr = runLine(t, "fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", fitOut, "--quiet",
+		"--sweeps", "40", "--burn", "10", "--thin", "2", "--similarity")
+	if code != 0 {
+		t.Fatalf("fit: exit %d: %s", code, stderr)
+	}
+	keys := func(path string) (string, map[string]json.RawMessage) {
+		raw, err := os.ReadFile(path)
+		if err != nil {
+			t.Fatal(err)
+		}
+		var m map[string]json.RawMessage
+		if err := json.Unmarshal(raw, &m); err != nil {
+			t.Fatal(err)
+		}
+		return strings.Join(slices.Sorted(maps.Keys(m)), " "), m
+	}
+	gotKeys, got := keys(post)
+	wantKeys, _ := keys(fitOut)
+	if gotKeys != wantKeys {
+		t.Errorf("replay --posterior fields %q, fit's %q", gotKeys, wantKeys)
+	}
+	var p posteriorFile
+	raw, _ := os.ReadFile(post)
+	if err := json.Unmarshal(raw, &p); err != nil {
+		t.Fatal(err)
+	}
+	if p.Category != "breakfast-cereal" || len(p.Products) == 0 || len(p.Segments) != len(p.Products) || len(p.Similarity) != len(p.Products) {
+		t.Errorf("category %q, %d products, %d segments, %d similarity rows", p.Category, len(p.Products), len(p.Segments), len(p.Similarity))
+	}
+	if _, ok := got["similarity"]; !ok {
+		t.Error("no similarity matrix with --similarity")
+	}
+	code, _, stderr = runLine(t, "replay", "--in", "../../testdata/larkfield-refits.jsonl", "--out", filepath.Join(dir, "e2.jsonl"),
+		"--particles", "16", "--quiet", "--posterior", filepath.Join(dir, "p2.json"))
+	if code == 0 || !strings.Contains(stderr, "--category") {
+		t.Errorf("several categories without --category: exit %d, stderr %q; want a refusal naming --category", code, stderr)
 	}
 }

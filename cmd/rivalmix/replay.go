@@ -23,6 +23,8 @@ import (
 // replayConfig holds the flags of `rivalmix replay`.
 type replayConfig struct {
 	in, out, category, rejected string
+	posterior                   string
+	similarity                  bool
 	seed                        uint64
 	particles, batch            int
 	competitors                 int
@@ -50,6 +52,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	fs.IntVar(&c.competitors, "competitors", wd.Competitors, "candidate competitors L for messages that do not say")
 	fs.BoolVar(&c.strict, "strict", false, "reject non-positive entries instead of dropping them")
 	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
+	fs.StringVar(&c.posterior, "posterior", "", "after the last refit, also write that refit's posterior in the shape of fit's posterior.json (one category: name it with --category if the input holds several)")
+	fs.BoolVar(&c.similarity, "similarity", false, "with --posterior: also write the N x N co-segment probability matrix")
 	fs.StringVar(&c.at, "time", "", "event time (RFC 3339) of refits whose refit-complete line carries none (default: when the replay starts)")
 	eventFlags(fs, &c.events)
 	if err := parseFlags(fs, args); err != nil {
@@ -81,6 +85,11 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			return fmt.Errorf("replay: --category %q: %w", c.category, err)
 		}
 	}
+	if c.posterior != "" {
+		if err := checkWritable(c.posterior); err != nil {
+			return fmt.Errorf("replay: --posterior: %w", err)
+		}
+	}
 	in, err := os.Open(c.in)
 	if err != nil {
 		return fmt.Errorf("replay: --in: %w", err)
@@ -107,6 +116,11 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if err := r.out.Flush(); err != nil {
 		return fmt.Errorf("replay: write %s: %w", c.out, err)
 	}
+	if c.posterior != "" {
+		if err := r.writePosterior(); err != nil {
+			return fmt.Errorf("replay: --posterior: %w", err)
+		}
+	}
 	if c.quiet {
 		return nil
 	}
@@ -121,6 +135,36 @@ type replayCategory struct {
 	w    *category.Worker
 	prev map[string]int
 	rows []replayRow
+	last *refitPosterior // the posterior at the last refit-complete
+}
+
+// refitPosterior is what --posterior writes: a refit's draws, data and
+// summary as its refit-complete left them.
+type refitPosterior struct {
+	products []string
+	data     []*sequential.Datum
+	draws    []sequential.Draw
+	summary  sequential.Summary
+}
+
+// writePosterior writes the last refit's posterior of the one category
+// (--category, or the only one in the input) in fit's shape.
+func (r *replayer) writePosterior() error {
+	cat := r.cfg.category
+	if cat == "" {
+		if len(r.workers) != 1 {
+			return fmt.Errorf("the input holds %d categories; name one with --category", len(r.workers))
+		}
+		for c := range r.workers {
+			cat = c
+		}
+	}
+	rc, ok := r.workers[cat]
+	if !ok || rc.last == nil {
+		return fmt.Errorf("category %s completed no refit", cat)
+	}
+	lp := rc.last
+	return writeJSON(r.cfg.posterior, newPosteriorFile(cat, lp.products, lp.data, lp.draws, lp.summary, r.cfg.similarity))
 }
 
 type replayRow struct {
@@ -306,6 +350,10 @@ func (r *replayer) complete(rc *replayCategory, refit string, at, start time.Tim
 	}
 	rc.prev = cur
 	rc.rows = append(rc.rows, row)
+	if r.cfg.posterior != "" && len(rep.Products) > 0 {
+		ps := rc.w.Particles()
+		rc.last = &refitPosterior{products: rep.Products, data: ps.Data(), draws: ps.Draws(), summary: rep.Summary}
+	}
 	fmt.Fprintf(r.stderr, "refit %s %s: %d products, %d segments, %d moves, %d alerts, ESS %.0f/%d, %.1fs\n",
 		row.category, refit, row.products, row.segments, row.moves, row.alerts, row.ess, row.particles, row.elapsed.Seconds())
 	return nil
