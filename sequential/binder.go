@@ -272,8 +272,8 @@ func (s *binderSearch) moverCorrection(v int, m softMover, sign int32) {
 }
 
 // cellAdd adds delta to the cell of seg in row, dropping cells that reach
-// zero; counts may be negative.
-func cellAdd(row *[]cell, seg, delta int32) {
+// zero; counts may be negative. It reports whether the cell was there.
+func cellAdd(row *[]cell, seg, delta int32) bool {
 	r := *row
 	for x := range r {
 		if r[x].seg == seg {
@@ -282,10 +282,11 @@ func cellAdd(row *[]cell, seg, delta int32) {
 				r[x] = r[len(r)-1]
 				*row = r[:len(r)-1]
 			}
-			return
+			return true
 		}
 	}
 	*row = append(r, cell{seg: seg, count: delta})
+	return false
 }
 
 // improve sweeps the products until no single move lowers the expected
@@ -376,20 +377,10 @@ func (s *binderSearch) move(i int, to int32) {
 	}
 }
 
+// rowAdd is cellAdd for the rows of the point partition, whose counts
+// never fall below zero.
 func rowAdd(row *[]cell, seg, delta int32) {
-	r := *row
-	for x := range r {
-		if r[x].seg == seg {
-			r[x].count += delta
-			if r[x].count == 0 {
-				r[x] = r[len(r)-1]
-				*row = r[:len(r)-1]
-			}
-			return
-		}
-	}
-	if delta < 0 {
+	if !cellAdd(row, seg, delta) && delta < 0 {
 		panic("sequential: internal error: contingency count below zero")
 	}
-	*row = append(r, cell{seg: seg, count: delta})
 }
