@@ -44,7 +44,7 @@ type SegmentView struct {
 	// MeanReported is the typical number of reported competitors of a
 	// member.
 	MeanReported alerts.Float `json:"mean_reported"`
-	// Members are the member product ids, ascending.
+	// Members are the member product ids in reading order (CompareIDs).
 	Members []string `json:"members"`
 }
 
@@ -144,7 +144,7 @@ func NewView(rep RefitReport, records func(product string) (state.ProductRecord,
 				sv.Members = append(sv.Members, rep.Products[i])
 			}
 		}
-		slices.Sort(sv.Members)
+		slices.SortFunc(sv.Members, CompareIDs)
 		v.Segments[c] = sv
 	}
 	for i, p := range rep.Products {

@@ -122,3 +122,19 @@ func TestNewViewNeedsAlertIDs(t *testing.T) {
 		}
 	}
 }
+
+// TestNewViewMembersInReadingOrder: members are listed as a person reads
+// ids (P-2 before P-10), not in byte order.
+func TestNewViewMembersInReadingOrder(t *testing.T) {
+	t.Parallel()
+	rep := testReport()
+	rep.Products = []string{"P-10", "P-2", "P-1", "D", "<i>E</i>"}
+	v, err := NewView(rep, testRecords)
+	if err != nil {
+		t.Fatal(err)
+	}
+	got := strings.Join(v.Segments[0].Members, " ")
+	if got != "P-1 P-2 P-10" {
+		t.Errorf("members of the largest segment: %s, want P-1 P-2 P-10", got)
+	}
+}
