@@ -32,8 +32,8 @@ type Refit struct {
 	ESS       float64
 	Particles int
 	Diversity int
-	// MeanSurprise is the mean log predictive density (nats) of the
-	// data the refit added or replaced; NaN when it changed none.
+	// MeanSurprise is the mean negative log predictive density (nats)
+	// of the data the refit added or replaced; NaN when it changed none.
 	MeanSurprise float64
 }
 

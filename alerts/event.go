@@ -252,9 +252,10 @@ type RefitSummary struct {
 	Particles int `json:"particles"`
 	Diversity int `json:"diversity"`
 	// MeanSurprise is the mean, over the data this refit added or
-	// replaced, of the log predictive density (nats) that
-	// sequential.Particles.Add and Replace returned: lower means more
-	// surprising. Absent when the refit changed no datum.
+	// replaced, of the negative log predictive density (nats) that
+	// sequential.Particles.Add and Replace returned (their return value
+	// with its sign turned): higher means more surprising. Absent when
+	// the refit changed no datum.
 	MeanSurprise Float `json:"mean_surprise,omitzero"`
 	// ARI, in [-1, 1], is the adjusted Rand index between the previous and
 	// the new point partition over the products present in both; absent

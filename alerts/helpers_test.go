@@ -22,7 +22,7 @@ type hand struct {
 // MeanReported = 3 + segment index.
 func handRefit(t *testing.T, refit string, k int, prods []hand) Refit {
 	t.Helper()
-	r := Refit{Category: "breakfast-cereal", Refit: refit, ESS: 100, Particles: 128, Diversity: 40, MeanSurprise: -3.5}
+	r := Refit{Category: "breakfast-cereal", Refit: refit, ESS: 100, Particles: 128, Diversity: 40, MeanSurprise: 3.5}
 	r.Summary.Segments = make([]sequential.SegmentSummary, k)
 	for c := range r.Summary.Segments {
 		r.Summary.Segments[c] = sequential.SegmentSummary{Median: [3]float64{0.6, 0.35, 0.2}, MeanReported: 3 + float64(c)}

@@ -49,7 +49,7 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 	var out []simRefit
 	for r := 0; r < refits; r++ {
 		prods := seq.Refit(r)
-		var lpSum float64
+		var lpSum float64 // the sum of negative log predictive densities
 		for i := range prods {
 			var lp float64
 			if r == 0 {
@@ -60,7 +60,7 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 			if err != nil {
 				t.Fatal(err)
 			}
-			lpSum += lp
+			lpSum -= lp
 		}
 		ps.SettleRefit()
 		data := ps.Data()
