@@ -49,7 +49,7 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 	var out []simRefit
 	for r := 0; r < refits; r++ {
 		prods := seq.Refit(r)
-		var lpSum float64 // the sum of negative log predictive densities
+		var surpriseSum float64 // negative log predictive densities
 		for i := range prods {
 			var lp float64
 			if r == 0 {
@@ -60,7 +60,7 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 			if err != nil {
 				t.Fatal(err)
 			}
-			lpSum -= lp
+			surpriseSum -= lp
 		}
 		ps.SettleRefit()
 		data := ps.Data()
@@ -71,7 +71,7 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 		ids := ps.Products()
 		in := Refit{Category: cfg.Category, Refit: fmt.Sprintf("sim-%d", r), Products: ids,
 			Data: data, Summary: sum, ESS: ps.ESS(), Particles: ps.NumParticles(), Diversity: ps.Diversity(),
-			MeanSurprise: lpSum / float64(len(prods))}
+			MeanSurprise: surpriseSum / float64(len(prods))}
 		byID := make(map[string]int, len(prods))
 		for i := range prods {
 			byID[prods[i].ID] = i
