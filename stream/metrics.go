@@ -204,7 +204,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Help: "Products of the category with a missed-competitor alert in force after its last refit.",
 		}, []string{"category"}),
 		summary: prometheus.NewHistogram(prometheus.HistogramOpts{
-			Name:    "rivalmix_refit_summary_seconds",
+			Name:    "rivalmix_refit_latency_seconds",
 			Help:    "Time from a refit-complete message's arrival in the input stream to the commit of the refit's summary and alerts to the outbox, in seconds.",
 			Buckets: prometheus.ExponentialBuckets(1e-2, 2.5, 10), // 10 ms .. 38 s
 		}),

@@ -142,7 +142,7 @@ rivalmix_active_alerts{category="cereal"} 2
 			if h.GetSampleCount() != 1 || math.Abs(h.GetSampleSum()-200e-6) > 1e-12 {
 				t.Errorf("update histogram count %d sum %g, want 1 and 2e-4", h.GetSampleCount(), h.GetSampleSum())
 			}
-		case "rivalmix_refit_summary_seconds":
+		case "rivalmix_refit_latency_seconds":
 			// 1.5 s and a clamped 0; the smallest bucket (10 ms) holds the 0.
 			h := f.GetMetric()[0].GetHistogram()
 			if h.GetSampleCount() != 2 || math.Abs(h.GetSampleSum()-1.5) > 1e-12 || h.GetBucket()[0].GetCumulativeCount() != 1 {

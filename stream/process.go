@@ -29,7 +29,7 @@ type part struct {
 	touched map[string]bool
 	lastSeq uint64
 	// completed holds the stream times of the refit-complete messages
-	// the part applied, for rivalmix_refit_summary_seconds.
+	// the part applied, for rivalmix_refit_latency_seconds.
 	completed []time.Time
 }
 

@@ -721,8 +721,8 @@ func TestServiceEndToEnd(t *testing.T) {
 		t.Errorf("metric %s: %s", p.Metric, p.Text)
 	}
 	// One refit-to-summary latency per completed refit.
-	if n := histogramCount(t, in.reg, "rivalmix_refit_summary_seconds"); n != 4 {
-		t.Errorf("rivalmix_refit_summary_seconds counts %d refits, want 4 (2 categories x 2 refits)", n)
+	if n := histogramCount(t, in.reg, "rivalmix_refit_latency_seconds"); n != 4 {
+		t.Errorf("rivalmix_refit_latency_seconds counts %d refits, want 4 (2 categories x 2 refits)", n)
 	}
 	wantApplied := 2 * (cereal.n + tea.n + 2)
 	if got := testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeApplied))); int(got) != wantApplied {
