@@ -38,8 +38,15 @@ func (l *lockedBuffer) String() string {
 	return l.b.String()
 }
 
-// demoArgs is a small demo: 40 products, 3 refits.
-var demoArgs = []string{"--products", "40", "--refits", "3", "--particles", "64"}
+// smallDemo returns the flags of a small demo and its number of refits:
+// 40 products, 3 refits, 64 particles; under -short (the race detector
+// slows the demo about sixfold) 24 products, 2 refits, 32 particles.
+func smallDemo() ([]string, int) {
+	if testing.Short() {
+		return []string{"--products", "24", "--refits", "2", "--particles", "32"}, 2
+	}
+	return []string{"--products", "40", "--refits", "3", "--particles", "64"}, 3
+}
 
 func TestDemoHolds(t *testing.T) {
 	t.Parallel()
@@ -93,7 +100,8 @@ func TestDemoExitsWithoutTerminal(t *testing.T) {
 	ctx, cancel := context.WithTimeout(context.Background(), 2*time.Minute)
 	defer cancel()
 	var out, errb bytes.Buffer
-	if err := runDemo(ctx, demoArgs, &out, &errb); err != nil {
+	args, _ := smallDemo()
+	if err := runDemo(ctx, args, &out, &errb); err != nil {
 		t.Fatalf("demo: %v\nstderr: %s", err, errb.String())
 	}
 	if ctx.Err() != nil {
@@ -119,8 +127,9 @@ func TestDemoHoldsAndServesMetrics(t *testing.T) {
 	runCtx, interrupt := context.WithCancel(ctx)
 	defer interrupt()
 	var out, errb lockedBuffer
+	args, refits := smallDemo()
 	done := make(chan error, 1)
-	go func() { done <- runDemo(runCtx, append([]string{"--hold"}, demoArgs...), &out, &errb) }()
+	go func() { done <- runDemo(runCtx, append([]string{"--hold"}, args...), &out, &errb) }()
 
 	holdLine := regexp.MustCompile(`dashboard up at (http://\S+/) until Ctrl-C`)
 	var base string
@@ -154,20 +163,18 @@ func TestDemoHoldsAndServesMetrics(t *testing.T) {
 	// rivalmix_active_alerts: the count the last refit's summary event
 	// reported, which the demo prints as "(N active)".
 	active := regexp.MustCompile(`refit (\S+): .* \((\d+) active\)`).FindAllStringSubmatch(out.String(), -1)
-	if len(active) != 3 {
-		t.Fatalf("demo printed %d refit lines, want 3:\n%s", len(active), out.String())
+	if len(active) != refits {
+		t.Fatalf("demo printed %d refit lines, want %d:\n%s", len(active), refits, out.String())
 	}
 	wantActive, _ := strconv.Atoi(active[len(active)-1][2])
 	got := samples["rivalmix_active_alerts"]
 	if len(got) != 1 || !strings.Contains(got[0].labels, `category="`) || got[0].value != float64(wantActive) {
 		t.Errorf("rivalmix_active_alerts samples %v, want one of value %d (the last summary's active alerts)", got, wantActive)
 	}
-	if wantActive == 0 && !strings.Contains(out.String(), "missed-competitor alerts") {
-		t.Log("no alert active after the last refit: the gauge is checked at 0")
-	}
+	t.Logf("alerts in force after the last refit: %d (gauge %v)", wantActive, got)
 	// One refit-to-summary latency per refit.
-	if c := samples["rivalmix_refit_latency_seconds_count"]; len(c) != 1 || c[0].value != 3 {
-		t.Errorf("rivalmix_refit_latency_seconds_count %v, want 3", c)
+	if c := samples["rivalmix_refit_latency_seconds_count"]; len(c) != 1 || c[0].value != float64(refits) {
+		t.Errorf("rivalmix_refit_latency_seconds_count %v, want %d", c, refits)
 	}
 
 	t.Run("promtool", func(t *testing.T) { checkPromtool(t, body) })
