@@ -1424,3 +1424,45 @@ func histogramCount(t testing.TB, reg prometheus.Gatherer, name string) uint64 {
 	t.Fatalf("%s not gathered", name)
 	return 0
 }
+
+// TestServiceActiveAlertsAfterRestart: the alerts-in-force gauge is
+// restored with the category at start, before any new refit, from the
+// stored alert memory.
+func TestServiceActiveAlertsAfterRestart(t *testing.T) {
+	t.Parallel()
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	e, js, cfg := newTestBus(t, ctx)
+	cereal := newTestCategory("breakfast-cereal", 24, 1001, 81)
+	last := publishInput(t, ctx, js, refitMessages(0, cereal))
+	path := filepath.Join(t.TempDir(), "state.db")
+	lg := newTestLog(t)
+	in := startInstance(t, e.ClientURL(), path, cfg, lg, instanceOptions{})
+	if stopped, err := in.waitDone(ctx, last, nil); stopped {
+		t.Fatalf("service stopped: %v", err)
+	}
+	before := testutil.ToFloat64(in.svc.metrics.active.WithLabelValues(cereal.name))
+	var sum struct {
+		Data alerts.RefitSummary `json:"data"`
+	}
+	msgs, _ := outputEvents(t, ctx, js, cfg.Bus.OutputStream)
+	for _, m := range msgs {
+		if strings.HasSuffix(m.Subject, "."+string(alerts.KindSummary)) {
+			if err := json.Unmarshal(m.Data, &sum); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if int(before) != sum.Data.ActiveAlerts || before == 0 {
+		t.Fatalf("gauge %v after the refit, summary says %d active; want them equal and above 0 for this test to mean anything",
+			before, sum.Data.ActiveAlerts)
+	}
+	if err := in.stop(); err != nil {
+		t.Fatal(err)
+	}
+	again := startInstance(t, e.ClientURL(), path, cfg, lg, instanceOptions{noRun: true})
+	if got := testutil.ToFloat64(again.svc.metrics.active.WithLabelValues(cereal.name)); got != before {
+		t.Errorf("after the restart rivalmix_active_alerts = %v, want %v", got, before)
+	}
+	again.abandon()
+}
