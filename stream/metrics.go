@@ -54,7 +54,7 @@ type Metrics struct {
 	retries   prometheus.Counter
 	rejected  *prometheus.CounterVec
 	active    *prometheus.GaugeVec
-	summary   prometheus.Histogram
+	latency   prometheus.Histogram
 	gaugeFunc []prometheus.Collector
 }
 
@@ -203,7 +203,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_active_alerts",
 			Help: "Products of the category with a missed-competitor alert in force after its last refit.",
 		}, []string{"category"}),
-		summary: prometheus.NewHistogram(prometheus.HistogramOpts{
+		latency: prometheus.NewHistogram(prometheus.HistogramOpts{
 			Name:    "rivalmix_refit_latency_seconds",
 			Help:    "Time from a refit-complete message's arrival in the input stream to the commit of the refit's summary and alerts to the outbox, in seconds.",
 			Buckets: prometheus.ExponentialBuckets(1e-2, 2.5, 10), // 10 ms .. 38 s
@@ -231,7 +231,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.summary)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.latency)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -251,10 +251,10 @@ func (m *Metrics) CountRejected(r RejectReason) { m.rejected.WithLabelValues(str
 // force (category.Worker.ActiveAlerts).
 func (m *Metrics) SetActiveAlerts(cat string, n int) { m.active.WithLabelValues(cat).Set(float64(n)) }
 
-// ObserveRefitSummary records the time from a refit-complete message's
+// ObserveRefitLatency records the time from a refit-complete message's
 // arrival to the commit of its refit's events; a negative duration (the
 // server's clock ahead of ours) counts as 0.
-func (m *Metrics) ObserveRefitSummary(d time.Duration) { m.summary.Observe(max(d, 0).Seconds()) }
+func (m *Metrics) ObserveRefitLatency(d time.Duration) { m.latency.Observe(max(d, 0).Seconds()) }
 
 // CountReplace counts one applied product refit by its form.
 func (m *Metrics) CountReplace(kept bool) {

@@ -46,14 +46,14 @@ func TestMetrics(t *testing.T) {
 	m.CountRejected(RejectField)
 	m.CountRejected(RejectField)
 	m.CountRejected(RejectModel)
-	m.ObserveRefitSummary(1500 * time.Millisecond)
-	m.ObserveRefitSummary(-time.Second) // server clock ahead: counted as 0
+	m.ObserveRefitLatency(1500 * time.Millisecond)
+	m.ObserveRefitLatency(-time.Second) // server clock ahead: counted as 0
 	// A refit that changed nothing keeps the last surprise.
 	m.ObserveRefit(category.RefitReport{Category: "cereal", Refit: "2026-W49", ESS: 128, MeanSurprise: math.NaN(),
 		Summary: rep.Summary}, 256)
 
 	for _, c := range []prometheus.Collector{m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-		m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.summary,
+		m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.latency,
 		m.gaugeFunc[0], m.gaugeFunc[1]} {
 		problems, err := testutil.CollectAndLint(c)
 		if err != nil {

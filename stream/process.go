@@ -213,7 +213,7 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	if s.metrics != nil {
 		s.metrics.ObserveCommit(time.Since(t0))
 		for _, at := range p.completed {
-			s.metrics.ObserveRefitSummary(time.Since(at))
+			s.metrics.ObserveRefitLatency(time.Since(at))
 		}
 	}
 	s.position = max(s.position, p.lastSeq)
