@@ -24,8 +24,9 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fs := newFlagSet("demo", "[flags]",
 		"Runs the whole service with no setup: an embedded NATS server, a temporary state file, the\n"+
 			"streaming worker and a simulator publishing weekly refits of a fictional category (Larkfield\n"+
-			"Grocers' breakfast cereals, an invented retailer). Prints a line per refit, then the segments,\n"+
-			"moves and alerts, and the HTTP address of the dashboard, metrics and read API while it runs.", stderr)
+			"Grocers' breakfast cereals, an invented retailer). Prints the HTTP address of the dashboard,\n"+
+			"metrics and read API, a line per refit, then the segments, moves and alerts. When stdout is a\n"+
+			"terminal it then keeps the dashboard up until Ctrl-C; piped (as under CI) it stops.", stderr)
 	var f serviceFlags
 	f.register(fs, "", "127.0.0.1:-1")
 	var s simulation
