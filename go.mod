@@ -37,5 +37,5 @@ require (
 
 require (
 	go.etcd.io/bbolt v1.5.0
-	golang.org/x/sys v0.49.0 // indirect
+	golang.org/x/sys v0.49.0
 )

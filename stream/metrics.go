@@ -1,6 +1,7 @@
 package stream
 
 import (
+	"errors"
 	"math"
 	"time"
 
@@ -8,6 +9,7 @@ import (
 
 	"rivalmix/alerts"
 	"rivalmix/stream/category"
+	"rivalmix/stream/input"
 )
 
 // Outcome is what became of one input message, the label of
@@ -50,7 +52,82 @@ type Metrics struct {
 	refits    *prometheus.CounterVec
 	replaces  *prometheus.CounterVec
 	retries   prometheus.Counter
+	rejected  *prometheus.CounterVec
+	active    *prometheus.GaugeVec
+	latency   prometheus.Histogram
 	gaugeFunc []prometheus.Collector
+}
+
+// RejectReason is the class of rule a rejected input message broke, the
+// label of rivalmix_rejected_total. The full reason travels with the
+// message on the rejected stream; the label stays a short fixed set.
+type RejectReason string
+
+// The classes of rejection.
+const (
+	// RejectSubject: the subject names no valid category.
+	RejectSubject RejectReason = "subject"
+	// RejectMessage: the payload as a whole is unreadable (too large,
+	// not JSON, not an object, trailing data).
+	RejectMessage RejectReason = "message"
+	// RejectField: one field of the payload breaks its rule.
+	RejectField RejectReason = "field"
+	// RejectModel: the message decoded but the category's model cannot
+	// take it (category.ErrModel).
+	RejectModel RejectReason = "model"
+	// RejectOther: any other reason.
+	RejectOther RejectReason = "other"
+)
+
+var rejectReasons = []RejectReason{RejectSubject, RejectMessage, RejectField, RejectModel, RejectOther}
+
+// ReasonOf classifies the error a message was rejected for.
+func ReasonOf(err error) RejectReason {
+	var ie *input.InputError
+	switch {
+	case errors.As(err, &ie) && ie.Field == "subject":
+		return RejectSubject
+	case errors.As(err, &ie) && ie.Field == "":
+		return RejectMessage
+	case errors.As(err, &ie):
+		return RejectField
+	case errors.Is(err, category.ErrModel):
+		return RejectModel
+	}
+	return RejectOther
+}
+
+// BuildInfo labels the rivalmix_build_info gauge.
+type BuildInfo struct {
+	// Version is the main module's version ("(devel)" for a source build).
+	Version string
+	// GoVersion is the Go release that built the binary, e.g. "go1.26.0".
+	GoVersion string
+	// Revision is the source revision (vcs.revision), "unknown" when the
+	// build recorded none.
+	Revision string
+}
+
+// NewBuildInfo returns the rivalmix_build_info gauge, always 1, whose
+// labels say which build is running (the Prometheus convention for
+// joining a build's identity onto other series). Register it beside
+// [NewMetrics]; empty fields are exposed as "unknown".
+func NewBuildInfo(bi BuildInfo) prometheus.Collector {
+	or := func(s string) string {
+		if s == "" {
+			return "unknown"
+		}
+		return s
+	}
+	g := prometheus.NewGauge(prometheus.GaugeOpts{
+		Name: "rivalmix_build_info",
+		Help: "Always 1; the labels name the running build's module version, Go version and source revision.",
+		ConstLabels: prometheus.Labels{
+			"version": or(bi.Version), "goversion": or(bi.GoVersion), "revision": or(bi.Revision),
+		},
+	})
+	g.Set(1)
+	return g
 }
 
 // NewMetrics creates the metrics and registers them with reg (not
@@ -118,12 +195,28 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_rejected_publish_failures_total",
 			Help: "Failed attempts to publish a rejected input message to the rejected stream (each is retried).",
 		}),
+		rejected: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_rejected_total",
+			Help: "Input messages filed on the rejected stream, by the class of rule broken (subject, message, field, model, other).",
+		}, []string{"reason"}),
+		active: prometheus.NewGaugeVec(prometheus.GaugeOpts{
+			Name: "rivalmix_active_alerts",
+			Help: "Products of the category with a missed-competitor alert in force after its last refit.",
+		}, []string{"category"}),
+		latency: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_refit_latency_seconds",
+			Help:    "Time from a refit-complete message's arrival in the input stream to the commit of the refit's summary and alerts to the outbox, in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-2, 2.5, 10), // 10 ms .. 38 s
+		}),
 	}
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
 	}
 	m.replaces.WithLabelValues("kept")
 	m.replaces.WithLabelValues("redrawn")
+	for _, r := range rejectReasons {
+		m.rejected.WithLabelValues(string(r))
+	}
 	if outboxPending != nil {
 		m.gaugeFunc = append(m.gaugeFunc, prometheus.NewGaugeFunc(prometheus.GaugeOpts{
 			Name: "rivalmix_outbox_pending",
@@ -138,7 +231,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.latency)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -150,6 +243,18 @@ func (m *Metrics) CountMessages(o Outcome, n int) {
 		m.messages.WithLabelValues(string(o)).Add(float64(n))
 	}
 }
+
+// CountRejected counts one message filed on the rejected stream.
+func (m *Metrics) CountRejected(r RejectReason) { m.rejected.WithLabelValues(string(r)).Inc() }
+
+// SetActiveAlerts sets the number of products of cat with an alert in
+// force (category.Worker.ActiveAlerts).
+func (m *Metrics) SetActiveAlerts(cat string, n int) { m.active.WithLabelValues(cat).Set(float64(n)) }
+
+// ObserveRefitLatency records the time from a refit-complete message's
+// arrival to the commit of its refit's events; a negative duration (the
+// server's clock ahead of ours) counts as 0.
+func (m *Metrics) ObserveRefitLatency(d time.Duration) { m.latency.Observe(max(d, 0).Seconds()) }
 
 // CountReplace counts one applied product refit by its form.
 func (m *Metrics) CountReplace(kept bool) {

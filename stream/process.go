@@ -28,6 +28,9 @@ type part struct {
 	outbox  []state.OutboxEvent
 	touched map[string]bool
 	lastSeq uint64
+	// completed holds the stream times of the refit-complete messages
+	// the part applied, for rivalmix_refit_latency_seconds.
+	completed []time.Time
 }
 
 // process applies one fetch as a sequence of parts, each committed and
@@ -109,6 +112,7 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 		p.outbox = append(p.outbox, evs...)
 		p.touched[cat] = true
 		p.acks = append(p.acks, pendingAck{msg, OutcomeApplied})
+		p.completed = append(p.completed, md.Timestamp)
 		return true, nil
 	}
 	return false, s.apply(ctx, w, m, msg, seq, p, now)
@@ -208,6 +212,9 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	}
 	if s.metrics != nil {
 		s.metrics.ObserveCommit(time.Since(t0))
+		for _, at := range p.completed {
+			s.metrics.ObserveRefitLatency(time.Since(at))
+		}
 	}
 	s.position = max(s.position, p.lastSeq)
 	if err := s.fail("committed"); err != nil {
@@ -263,6 +270,7 @@ func (s *Service) complete(w *category.Worker, refit string, at time.Time) ([]st
 	if s.metrics != nil {
 		s.metrics.ObserveSettle(time.Since(t0))
 		s.metrics.ObserveRefit(rep, w.Particles().NumParticles())
+		s.metrics.SetActiveAlerts(w.Category(), w.ActiveAlerts())
 	}
 	if s.views != nil && len(rep.Products) > 0 {
 		if err := s.showRefit(w, rep); err != nil {

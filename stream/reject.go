@@ -35,6 +35,7 @@ func (s *Service) reject(ctx context.Context, msg jetstream.Msg, seq uint64, rea
 	}
 	if s.metrics != nil {
 		s.metrics.CountMessages(OutcomeRejected, 1)
+		s.metrics.CountRejected(ReasonOf(reason))
 	}
 	s.lg.Info("rejected input", "subject", msg.Subject(), "seq", seq, "reason", reason.Error())
 	return nil

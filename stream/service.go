@@ -112,6 +112,9 @@ func (s *Service) restore(c string) error {
 		return err
 	}
 	s.workers[c] = w
+	if s.metrics != nil && w.LastRefit() != "" {
+		s.metrics.SetActiveAlerts(c, w.ActiveAlerts())
+	}
 	if w.Changes() > 0 {
 		// A refit was in progress at the last stop; its quiet period
 		// starts again now, or it would wait for the next message.

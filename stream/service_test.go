@@ -639,6 +639,9 @@ func TestServiceEndToEnd(t *testing.T) {
 		if s0.Products != c.n || s1.Products != c.n {
 			t.Errorf("%s: summaries count %d and %d products, want %d", c.name, s0.Products, s1.Products, c.n)
 		}
+		if got := testutil.ToFloat64(in.svc.metrics.active.WithLabelValues(c.name)); int(got) != s1.ActiveAlerts {
+			t.Errorf("%s: rivalmix_active_alerts = %v, the last summary says %d active", c.name, got, s1.ActiveAlerts)
+		}
 	}
 	recs := map[string][]state.ProductRecord{}
 	for _, c := range []*testCategory{cereal, tea} {
@@ -716,6 +719,10 @@ func TestServiceEndToEnd(t *testing.T) {
 	}
 	for _, p := range problems {
 		t.Errorf("metric %s: %s", p.Metric, p.Text)
+	}
+	// One refit-to-summary latency per completed refit.
+	if n := histogramCount(t, in.reg, "rivalmix_refit_latency_seconds"); n != 4 {
+		t.Errorf("rivalmix_refit_latency_seconds counts %d refits, want 4 (2 categories x 2 refits)", n)
 	}
 	wantApplied := 2 * (cereal.n + tea.n + 2)
 	if got := testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeApplied))); int(got) != wantApplied {
@@ -990,6 +997,27 @@ func TestServiceBadInput(t *testing.T) {
 	}
 	if got := testutil.ToFloat64(in.svc.metrics.messages.WithLabelValues(string(OutcomeRejected))); int(got) != len(cases) {
 		t.Errorf("rejected counted %v, want %d", got, len(cases))
+	}
+	// By reason: each case's class follows from the start of its reason
+	// header (`field "subject"`, `message: ...`, `field "..."`).
+	wantReason := map[RejectReason]int{}
+	for _, m := range rejected {
+		r := m.Header.Get(HeaderReason)
+		switch {
+		case strings.HasPrefix(r, `field "subject"`):
+			wantReason[RejectSubject]++
+		case strings.HasPrefix(r, "message: "):
+			wantReason[RejectMessage]++
+		case strings.HasPrefix(r, "field "):
+			wantReason[RejectField]++
+		default:
+			wantReason[RejectModel]++
+		}
+	}
+	for _, r := range rejectReasons {
+		if got := testutil.ToFloat64(in.svc.metrics.rejected.WithLabelValues(string(r))); int(got) != wantReason[r] {
+			t.Errorf("rivalmix_rejected_total{reason=%s} = %v, want %d", r, got, wantReason[r])
+		}
 	}
 	if _, ok := in.views.Category(cat); !ok {
 		t.Error("category missing from the read views after its refit completed")
@@ -1378,4 +1406,63 @@ func TestServiceCommitsAtRefitComplete(t *testing.T) {
 	if len(committed) < 2 || committed[len(committed)-1] != last {
 		t.Errorf("commits ended at %v, want the last at %d", committed, last)
 	}
+}
+
+// histogramCount returns the sample count of the unlabelled histogram
+// name in reg.
+func histogramCount(t testing.TB, reg prometheus.Gatherer, name string) uint64 {
+	t.Helper()
+	mfs, err := reg.Gather()
+	if err != nil {
+		t.Fatal(err)
+	}
+	for _, mf := range mfs {
+		if mf.GetName() == name {
+			return mf.GetMetric()[0].GetHistogram().GetSampleCount()
+		}
+	}
+	t.Fatalf("%s not gathered", name)
+	return 0
+}
+
+// TestServiceActiveAlertsAfterRestart: the alerts-in-force gauge is
+// restored with the category at start, before any new refit, from the
+// stored alert memory.
+func TestServiceActiveAlertsAfterRestart(t *testing.T) {
+	t.Parallel()
+	ctx, cancel := context.WithTimeout(context.Background(), 60*time.Second)
+	defer cancel()
+	e, js, cfg := newTestBus(t, ctx)
+	cereal := newTestCategory("breakfast-cereal", 24, 1001, 81)
+	last := publishInput(t, ctx, js, refitMessages(0, cereal))
+	path := filepath.Join(t.TempDir(), "state.db")
+	lg := newTestLog(t)
+	in := startInstance(t, e.ClientURL(), path, cfg, lg, instanceOptions{})
+	if stopped, err := in.waitDone(ctx, last, nil); stopped {
+		t.Fatalf("service stopped: %v", err)
+	}
+	before := testutil.ToFloat64(in.svc.metrics.active.WithLabelValues(cereal.name))
+	var sum struct {
+		Data alerts.RefitSummary `json:"data"`
+	}
+	msgs, _ := outputEvents(t, ctx, js, cfg.Bus.OutputStream)
+	for _, m := range msgs {
+		if strings.HasSuffix(m.Subject, "."+string(alerts.KindSummary)) {
+			if err := json.Unmarshal(m.Data, &sum); err != nil {
+				t.Fatal(err)
+			}
+		}
+	}
+	if int(before) != sum.Data.ActiveAlerts || before == 0 {
+		t.Fatalf("gauge %v after the refit, summary says %d active; want them equal and above 0 for this test to mean anything",
+			before, sum.Data.ActiveAlerts)
+	}
+	if err := in.stop(); err != nil {
+		t.Fatal(err)
+	}
+	again := startInstance(t, e.ClientURL(), path, cfg, lg, instanceOptions{noRun: true})
+	if got := testutil.ToFloat64(again.svc.metrics.active.WithLabelValues(cereal.name)); got != before {
+		t.Errorf("after the restart rivalmix_active_alerts = %v, want %v", got, before)
+	}
+	again.abandon()
 }

@@ -24,13 +24,15 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 	fs := newFlagSet("demo", "[flags]",
 		"Runs the whole service with no setup: an embedded NATS server, a temporary state file, the\n"+
 			"streaming worker and a simulator publishing weekly refits of a fictional category (Larkfield\n"+
-			"Grocers' breakfast cereals, an invented retailer). Prints a line per refit, then the segments,\n"+
-			"moves and alerts, and the HTTP address of the dashboard, metrics and read API while it runs.", stderr)
+			"Grocers' breakfast cereals, an invented retailer). Prints the HTTP address of the dashboard,\n"+
+			"metrics and read API, a line per refit, then the segments, moves and alerts. When stdout is a\n"+
+			"terminal it then keeps the dashboard up until Ctrl-C; piped (as under CI) it stops.", stderr)
 	var f serviceFlags
 	f.register(fs, "", "127.0.0.1:-1")
 	var s simulation
 	s.register(fs, 200, 4)
-	hold := fs.Bool("hold", false, "keep running after the last refit (until Ctrl-C) so the dashboard stays up")
+	hold := fs.Bool("hold", false, "keep the dashboard up after the last refit until Ctrl-C, even when stdout is not a terminal")
+	exit := fs.Bool("exit", false, "stop after the last refit, even when stdout is a terminal")
 	keep := fs.Bool("keep", false, "keep the temporary state directory instead of deleting it")
 	timeout := fs.Duration("refit-timeout", 5*time.Minute, "longest wait for one refit's summary event")
 	fs.Lookup("particles").DefValue = "128"
@@ -47,6 +49,10 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return err
 	}
 	if err := s.validate(); err != nil {
+		return usageErrorf(fs, "%v", err)
+	}
+	holding, err := demoHolds(*hold, *exit, stdout)
+	if err != nil {
 		return usageErrorf(fs, "%v", err)
 	}
 	dir, err := os.MkdirTemp("", "rivalmix-demo-")
@@ -116,15 +122,38 @@ func runDemo(ctx context.Context, args []string, stdout, stderr io.Writer) error
 		return fmt.Errorf("demo: %w", err)
 	}
 	printDemoSummary(stdout, r.views, s.category, kinds, lastMoves)
-	if *hold {
-		fmt.Fprintf(stdout, "\nholding; dashboard at %s, Ctrl-C to stop\n", httpURL(r))
+	switch {
+	case holding && httpURL(r) != "":
+		fmt.Fprintf(stdout, "\ndashboard up at %s until Ctrl-C (--exit stops after the last refit)\n", httpURL(r))
 		<-ctx.Done()
+	case holding:
+		fmt.Fprintln(stdout, "\nrunning until Ctrl-C (no dashboard: --http-addr is empty)")
+		<-ctx.Done()
+	default:
+		fmt.Fprintln(stdout, "\nstopping after the last refit: stdout is not a terminal or --exit was given (--hold keeps the dashboard up)")
 	}
 	stopRun()
 	if err := <-runDone; err != nil {
 		return fmt.Errorf("demo: %w", err)
 	}
 	return nil
+}
+
+// demoHolds decides whether the demo keeps its dashboard up after the
+// last refit: by default when stdout is a terminal (someone is there to
+// open the link and press Ctrl-C), not under CI or with output piped;
+// --hold and --exit force either way.
+func demoHolds(hold, exit bool, stdout io.Writer) (bool, error) {
+	switch {
+	case hold && exit:
+		return false, errors.New("--hold and --exit contradict each other; give at most one")
+	case hold:
+		return true, nil
+	case exit:
+		return false, nil
+	}
+	f, ok := stdout.(*os.File)
+	return ok && isTerminal(f), nil
 }
 
 // demoSummary is the part of a refit summary event the demo prints.

@@ -153,7 +153,8 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 		return nil, err
 	}
 	reg := prometheus.NewRegistry()
-	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}))
+	reg.MustRegister(collectors.NewGoCollector(), collectors.NewProcessCollector(collectors.ProcessCollectorOpts{}),
+		stream.NewBuildInfo(buildInfo()))
 	var svc *stream.Service
 	metrics := stream.NewMetrics(reg,
 		func() float64 {

@@ -5,6 +5,8 @@ import (
 	"fmt"
 	"io"
 	"runtime/debug"
+
+	"rivalmix/stream"
 )
 
 // runVersion prints the module version and, when the binary was built
@@ -44,4 +46,20 @@ func versionLine() string {
 		line += fmt.Sprintf(" revision %.12s %s%s", rev, at, dirty)
 	}
 	return line + ", " + bi.GoVersion
+}
+
+// buildInfo is the build as the rivalmix_build_info metric labels it;
+// fields the build did not record stay empty.
+func buildInfo() stream.BuildInfo {
+	bi, ok := debug.ReadBuildInfo()
+	if !ok {
+		return stream.BuildInfo{}
+	}
+	out := stream.BuildInfo{Version: bi.Main.Version, GoVersion: bi.GoVersion}
+	for _, s := range bi.Settings {
+		if s.Key == "vcs.revision" {
+			out.Revision = s.Value
+		}
+	}
+	return out
 }

@@ -111,6 +111,18 @@ func (w *Worker) Particles() *sequential.Particles { return w.ps }
 // LastRefit returns the last completed refit, "" before the first.
 func (w *Worker) LastRefit() string { return w.lastRefit }
 
+// ActiveAlerts returns the number of products with a missed-competitor
+// alert in force after the last completed refit (alerts.AlertMemory.Active).
+func (w *Worker) ActiveAlerts() int {
+	n := 0
+	for _, am := range w.mem.Alert {
+		if am.Active {
+			n++
+		}
+	}
+	return n
+}
+
 // Changes returns the number of data changes since the last completed
 // refit: 0 means a refit-complete now would only repeat the last one.
 func (w *Worker) Changes() int { return w.changes }
