@@ -23,6 +23,13 @@ type RefitReport struct {
 	Distinct     int
 	MeanSurprise float64 // NaN when the refit changed no datum
 	Changes      int     // data changes since the previous refit
+	// Draws are the particles' weighted draws after the refit, without
+	// their placement records, and Data the products' data (aligned with
+	// Products): what the dashboard's figures are computed from.
+	Draws []sequential.Draw
+	Data  []*sequential.Datum
+	// History is the category's completed refits, this one last.
+	History []RefitPoint
 }
 
 // CompleteRefit ends a refit: the refit-sized rejuvenation, the posterior
@@ -59,6 +66,9 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	rep.Alerts = out
 	rep.Events = out.Events
 	rep.Labels = out.Labels
+	rep.Draws, rep.Data = figureDraws(w.ps.Draws()), data
+	w.history = appendHistory(w.history, newRefitPoint(&rep))
+	rep.History = cloneHistory(w.history)
 	w.surpriseSum, w.surpriseN, w.changes = 0, 0, 0
 	w.lastRefit = refit
 	w.refits++
@@ -95,5 +105,16 @@ func (w *Worker) Current() (RefitReport, error) {
 	}
 	rep.Alerts = out
 	rep.Labels = out.Labels
+	rep.Draws, rep.Data = figureDraws(w.ps.Draws()), data
+	rep.History = cloneHistory(w.history)
 	return rep, nil
+}
+
+// figureDraws drops the draws' placement records, which the figures do
+// not use and which cost more memory than the labels.
+func figureDraws(draws []sequential.Draw) []sequential.Draw {
+	for i := range draws {
+		draws[i].Soft = nil
+	}
+	return draws
 }
