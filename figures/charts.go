@@ -326,7 +326,7 @@ func CDFChart(id, caption string, x, u []float64, threshold, pExceed float64) Fi
 		points(xs, ys), Colour(0))
 	tx := f.x.at(threshold)
 	c.line(tx, f.top, tx, f.top+f.height, `class="threshold" stroke="`+Colour(3)+`" stroke-width="1.5" stroke-dasharray="5 3"`)
-	c.text(tx+4, f.top+12, "start", fmt.Sprintf("threshold %s: P(next > threshold) = %s", Num(threshold), Num(pExceed)),
+	c.text(f.left, f.top-8, "start", fmt.Sprintf("threshold %s: P(next > threshold) = %s", Num(threshold), Num(pExceed)),
 		` fill="`+Colour(3)+`"`)
 	return Figure{ID: id, Caption: caption, Series: 1, svg: c.done()}
 }

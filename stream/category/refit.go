@@ -3,6 +3,7 @@ package category
 import (
 	"fmt"
 	"math"
+	"slices"
 
 	"rivalmix/alerts"
 	"rivalmix/sequential"
@@ -117,4 +118,23 @@ func figureDraws(draws []sequential.Draw) []sequential.Draw {
 		draws[i].Soft = nil
 	}
 	return draws
+}
+
+// BatchReport is the report of a batch fit (rivalmix fit): the summary,
+// stable segment ids and alerts that a category's first refit would give
+// with a fresh alert memory, the draws and a one-point history. cfg must
+// hold the threshold the summary was computed at.
+func BatchReport(cat, refit string, products []string, data []*sequential.Datum, draws []sequential.Draw,
+	sum sequential.Summary, cfg alerts.Config) (RefitReport, error) {
+	rep := RefitReport{Category: cat, Refit: refit, Summary: sum, Products: products, ESS: sum.ESS,
+		MeanSurprise: math.NaN(), Changes: len(products), Data: data}
+	out, err := alerts.Evaluate(cfg, alerts.Memory{}, alerts.Refit{Category: cat, Refit: refit, Products: products,
+		Data: data, Summary: sum, ESS: sum.ESS, Particles: len(draws), MeanSurprise: math.NaN()})
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", cat, refit, err)
+	}
+	rep.Alerts, rep.Events, rep.Labels = out, out.Events, out.Labels
+	rep.Draws = figureDraws(slices.Clone(draws))
+	rep.History = []RefitPoint{newRefitPoint(&rep)}
+	return rep, nil
 }
