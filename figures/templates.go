@@ -10,6 +10,7 @@ const pageTemplates = `
 <meta charset="utf-8">
 {{if .Refresh}}<meta http-equiv="refresh" content="30">{{end}}
 <meta name="viewport" content="width=device-width, initial-scale=1">
+<link rel="icon" href="data:,">
 <title>{{.Title}}</title>
 <style>
 body { font: 14px/1.45 system-ui, sans-serif; margin: 1.5em 2em; color: #1d1d1d; max-width: 1200px; }
@@ -26,7 +27,7 @@ td.n { text-align: right; font-variant-numeric: tabular-nums; }
 figure { margin: 1.2em 0; } figcaption { color: #444; font-size: .92em; max-width: 900px; }
 svg .axis-label { fill: #333; font-size: 12px; }
 .swatch { display: inline-block; width: .8em; height: .8em; border-radius: 2px; margin-right: .3em; vertical-align: baseline; }
-a { color: #0060a0; }
+a { color: #0060a0; } td a { white-space: nowrap; }
 </style>
 </head>
 <body>
