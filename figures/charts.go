@@ -93,7 +93,7 @@ func DecayChart(id, caption string, series []DecaySeries) Figure {
 		}
 		c.raw(`</g>`)
 	}
-	return Figure{ID: id, Caption: caption, Series: len(series), svg: c.done()}
+	return c.figure(id, caption, len(series))
 }
 
 func clampLog(v, lo, hi float64) float64 {
@@ -181,7 +181,7 @@ func Heatmap(id, caption, xLabel, yLabel string, cols []HeatColumn, rows int, gr
 	}
 	c.printf(`<text x="%.1f" y="%.1f" text-anchor="middle" transform="rotate(90 %.1f %.1f)" class="axis-label">%s</text>`,
 		bx+44, top+plotH/2, bx+44, top+plotH/2, html.EscapeString(valueLabel))
-	return Figure{ID: id, Caption: caption, Series: nSeries, svg: c.done()}
+	return c.figure(id, caption, nSeries)
 }
 
 // RowGroup names the rows from Start to the next group's start.
@@ -201,7 +201,11 @@ type LineSeries struct {
 // optional bars (drawn first, grey, in the y unit) such as the moves of
 // each refit. ymin0 starts the y axis at 0.
 func LineChart(id, caption, xLabel, yLabel string, x []string, series []LineSeries, bars *LineSeries, ymin0 bool) Figure {
-	w, h := 640.0, 260.0
+	return lineChart(640, id, caption, xLabel, yLabel, x, series, bars, ymin0)
+}
+
+func lineChart(w float64, id, caption, xLabel, yLabel string, x []string, series []LineSeries, bars *LineSeries, ymin0 bool) Figure {
+	h := 260.0
 	c := newCanvas(w, h, caption)
 	f := newFrame(70, 34, w-100, h-90)
 	lo, hi := math.Inf(1), math.Inf(-1)
@@ -234,10 +238,11 @@ func LineChart(id, caption, xLabel, yLabel string, x []string, series []LineSeri
 	f.x = newScale(-0.5, float64(n)-0.5, f.left, f.left+f.width, false)
 	f.y = newScale(lo, hi, f.top+f.height, f.top, false)
 	var xt []tick
-	every := max(1, (n+7)/8)
+	fit := max(int((w-100)/75), 2) // refit labels that fit side by side
+	every := max(1, (n+fit-1)/fit)
 	for i, name := range x {
 		lab := ""
-		if i%every == 0 || i == n-1 {
+		if i%every == 0 {
 			lab = name
 		}
 		xt = append(xt, tick{v: float64(i), label: lab})
@@ -295,7 +300,7 @@ func LineChart(id, caption, xLabel, yLabel string, x []string, series []LineSeri
 	if bars != nil {
 		nSeries++
 	}
-	return Figure{ID: id, Caption: caption, Series: nSeries, svg: c.done()}
+	return c.figure(id, caption, nSeries)
 }
 
 // CDFChart draws a predictive CDF given by its quantiles: x[i] is the
@@ -328,5 +333,5 @@ func CDFChart(id, caption string, x, u []float64, threshold, pExceed float64) Fi
 	c.line(tx, f.top, tx, f.top+f.height, `class="threshold" stroke="`+Colour(3)+`" stroke-width="1.5" stroke-dasharray="5 3"`)
 	c.text(f.left, f.top-8, "start", fmt.Sprintf("threshold %s: P(next > threshold) = %s", Num(threshold), Num(pExceed)),
 		` fill="`+Colour(3)+`"`)
-	return Figure{ID: id, Caption: caption, Series: 1, svg: c.done()}
+	return c.figure(id, caption, 1)
 }

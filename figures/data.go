@@ -321,9 +321,9 @@ func OperatorCharts(h []category.RefitPoint) []Figure {
 		}
 	}
 	return []Figure{
-		LineChart("ess", "Effective sample size of the particle weights after each refit.", "refit", "ESS (particles)", x, []LineSeries{ess}, nil, true),
-		LineChart("distinct", "Distinct partitions among the particles after each refit (the diversity watch's count).", "refit", "distinct states (count)", x, []LineSeries{dist}, nil, true),
-		LineChart("surprise", "Mean negative log predictive density of the data each refit changed; a rise means the data drifted from the model.", "refit", "mean surprise (nats)", x, []LineSeries{sur}, nil, false),
+		lineChart(420, "ess", "Effective sample size of the particle weights after each refit.", "refit", "ESS (particles)", x, []LineSeries{ess}, nil, true),
+		lineChart(420, "distinct", "Distinct partitions among the particles after each refit (the diversity watch's count).", "refit", "distinct states (count)", x, []LineSeries{dist}, nil, true),
+		lineChart(420, "surprise", "Mean negative log predictive density of the data each refit changed; a rise means the data drifted from the model.", "refit", "mean surprise (nats)", x, []LineSeries{sur}, nil, false),
 	}
 }
 

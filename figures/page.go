@@ -6,6 +6,7 @@ import (
 	"io"
 	"maps"
 	"slices"
+	"strconv"
 
 	"rivalmix/alerts"
 	"rivalmix/stream/category"
@@ -314,5 +315,7 @@ var pages = template.Must(template.New("pages").Funcs(template.FuncMap{
 		return fmt.Sprint(v)
 	},
 	"anchor": ProductAnchor,
+	// prob writes a probability with three decimals.
+	"prob": func(v float64) string { return strconv.FormatFloat(v, 'f', 3, 64) },
 	"median": func(m [3]alerts.Float, j int) string { return Num(float64(m[j])) },
 }).Parse(pageTemplates))

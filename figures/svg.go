@@ -19,11 +19,13 @@ type Figure struct {
 	// "series"), for tests and for the page's legend.
 	Series int
 	svg    string
+	width  float64
 }
 
 // HTML returns the figure as an HTML <figure> element.
 func (f Figure) HTML() template.HTML {
-	return template.HTML(`<figure id="` + html.EscapeString(f.ID) + `" data-series="` + strconv.Itoa(f.Series) + `">` +
+	return template.HTML(`<figure id="` + html.EscapeString(f.ID) + `" data-series="` + strconv.Itoa(f.Series) +
+		`" style="max-width:` + strconv.Itoa(int(f.width)) + `px">` +
 		f.svg + `<figcaption>` + html.EscapeString(f.Caption) + `</figcaption></figure>`)
 }
 
@@ -190,6 +192,11 @@ func (c *canvas) line(x0, y0, x1, y1 float64, style string) {
 func (c *canvas) done() string {
 	c.b.WriteString(`</svg>`)
 	return c.b.String()
+}
+
+// figure wraps the finished canvas.
+func (c *canvas) figure(id, caption string, series int) Figure {
+	return Figure{ID: id, Caption: caption, Series: series, svg: c.done(), width: c.w}
 }
 
 // frame is a plotting area of a canvas with its two scales.

@@ -24,6 +24,7 @@ table.sortable th::after { content: " \2195"; color: #999; font-size: .8em; }
 td.n { text-align: right; font-variant-numeric: tabular-nums; }
 .meta { color: #555; }
 .caution { border-left: 4px solid #D55E00; padding: .4em .8em; background: #fbf3ec; }
+.figs { display: flex; flex-wrap: wrap; gap: 0 2.5em; align-items: flex-start; }
 figure { margin: 1.2em 0; } figcaption { color: #444; font-size: .92em; max-width: 900px; }
 svg .axis-label { fill: #333; font-size: 12px; }
 .swatch { display: inline-block; width: .8em; height: .8em; border-radius: 2px; margin-right: .3em; vertical-align: baseline; }
@@ -57,20 +58,20 @@ a { color: #0060a0; } td a { white-space: nowrap; }
 <h2>Segments</h2>
 {{template "segments" $pg}}
 <h2>Figures</h2>
-{{range $pg.Figures}}{{.HTML}}
-{{end}}{{if $pg.CoSegmentNote}}<p class="meta" id="cosegment-note">{{$pg.CoSegmentNote}}</p>{{end}}
+<div class="figs">{{range $pg.Figures}}{{.HTML}}
+{{end}}</div>{{if $pg.CoSegmentNote}}<p class="meta" id="cosegment-note">{{$pg.CoSegmentNote}}</p>{{end}}
 {{if $pg.Timeline}}<h2>Over {{$pg.Refits}} refits</h2>
-{{range $pg.Timeline}}{{.HTML}}
-{{end}}{{end}}
+<div class="figs">{{range $pg.Timeline}}{{.HTML}}
+{{end}}</div>{{end}}
 <h2>Latest moves</h2>
 {{if $pg.Moves}}<table id="moves" class="sortable">
 <thead><tr><th>product</th><th>from</th><th>to</th><th>membership of from</th><th>membership of to</th><th>refit</th></tr></thead>
-<tbody>{{range $pg.Moves}}<tr><td data-key="{{.Product.Rank}}">{{template "plink" .Product}}</td><td>{{.From}}</td><td>{{.To}}</td><td class="n">{{num .FromMembership}}</td><td class="n">{{num .ToMembership}}</td><td>{{.Refit}}</td></tr>
+<tbody>{{range $pg.Moves}}<tr><td data-key="{{.Product.Rank}}">{{template "plink" .Product}}</td><td>{{.From}}</td><td>{{.To}}</td><td class="n">{{prob .FromMembership}}</td><td class="n">{{prob .ToMembership}}</td><td>{{.Refit}}</td></tr>
 {{end}}</tbody></table>{{else}}<p id="moves-none">No product has moved in the refits kept.</p>{{end}}
 <h2>Missed-competitor alerts</h2>
 {{if $pg.Alerts}}<table id="alerts" class="sortable">
 <thead><tr><th>product</th><th>segment</th><th>P(next &gt; threshold)</th><th>threshold</th><th>median of next value</th><th>interval of next value</th><th>refit</th></tr></thead>
-<tbody>{{range $pg.Alerts}}<tr><td data-key="{{.Product.Rank}}">{{template "plink" .Product}}</td><td>{{.Segment}}</td><td class="n">{{num .Probability}}</td><td class="n">{{num .Threshold}}</td><td class="n">{{num .Median}}</td><td class="n" data-key="{{.Lo}}">{{num .Lo}} – {{num .Hi}}</td><td>{{.Refit}}</td></tr>
+<tbody>{{range $pg.Alerts}}<tr><td data-key="{{.Product.Rank}}">{{template "plink" .Product}}</td><td>{{.Segment}}</td><td class="n">{{prob .Probability}}</td><td class="n">{{num .Threshold}}</td><td class="n">{{num .Median}}</td><td class="n" data-key="{{.Lo}}">{{num .Lo}} – {{num .Hi}}</td><td>{{.Refit}}</td></tr>
 {{end}}</tbody></table>
 <p class="meta">The next value is the relative cross-elasticity of the strongest competitor the refit did not report; the interval runs from its 10% to its 90% quantile unless configured otherwise.</p>{{else}}<p id="alerts-none">No missed-competitor alert is active.</p>{{end}}
 {{if $pg.Products}}<h2>Products</h2>
@@ -97,8 +98,8 @@ a { color: #0060a0; } td a { white-space: nowrap; }
 {{if .View.Next.Defined}}<tr><th>next unreported value</th><td>median {{num .View.Next.Median}}, interval {{num .View.Next.Lo}} – {{num .View.Next.Hi}}, P(&gt; {{num .View.Next.Threshold}}) = {{num .View.Next.PExceed}}</td></tr>{{end}}
 </table>
 <p class="meta">The reported segment changes only with a move (held back by hysteresis); the point segment is where the latest refit puts the product. Each membership is the mean posterior chance of sharing a segment with that segment's members, so they need not sum to 1.</p>
-{{range .Figures}}{{.HTML}}
-{{end}}{{if .NoNext}}<p class="meta">{{.NoNext}}</p>{{end}}
+<div class="figs">{{range .Figures}}{{.HTML}}
+{{end}}</div>{{if .NoNext}}<p class="meta">{{.NoNext}}</p>{{end}}
 {{end}}
 
 {{define "sortscript"}}<script>
