@@ -316,6 +316,6 @@ var pages = template.Must(template.New("pages").Funcs(template.FuncMap{
 	},
 	"anchor": ProductAnchor,
 	// prob writes a probability with three decimals.
-	"prob": func(v float64) string { return strconv.FormatFloat(v, 'f', 3, 64) },
+	"prob":   func(v float64) string { return strconv.FormatFloat(v, 'f', 3, 64) },
 	"median": func(m [3]alerts.Float, j int) string { return Num(float64(m[j])) },
 }).Parse(pageTemplates))
