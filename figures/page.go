@@ -113,7 +113,14 @@ func BuildCategory(v category.View, opt Options) (*CategoryPage, error) {
 	if limit == 0 {
 		limit = DefaultCoSegmentLimit
 	}
-	link := opt.linker()
+	linker := opt.linker()
+	link := func(p string) ProductLink {
+		l := linker(p)
+		if _, ok := v.Products[p]; !ok {
+			l.Href = "" // withdrawn since: no page
+		}
+		return l
+	}
 	pg := BuildSummary(v, opt)
 	if p := v.Posterior; p != nil {
 		bands, err := Bands(p)
