@@ -36,19 +36,23 @@ func OrderStatCDF(ew ExpWeibull, l, j int, x float64) float64 {
 	return orderStatCDF(logF, l, j)
 }
 
-// orderStatCDF is OrderStatCDF from log F(x).
+// orderStatCDF is OrderStatCDF from log F(x). The terms of the binomial
+// sum are built from the first, F^l, by the ratio of neighbours
+// (l-m)/(m+1) (1-F)/F, so one evaluation costs two exponentials whatever
+// j is.
 func orderStatCDF(logF float64, l, j int) float64 {
 	if logF >= 0 {
 		return 1
 	}
-	log1mF := Log1mExp(-logF) // log(1 - F)
-	var s float64
-	lc := 0.0 // log C(l, m)
-	for m := 0; m < j; m++ {
-		if m > 0 {
-			lc += math.Log(float64(l-m+1)) - math.Log(float64(m))
-		}
-		s += math.Exp(lc + float64(m)*log1mF + float64(l-m)*logF)
+	if math.IsInf(logF, -1) {
+		return 0
+	}
+	odds := math.Exp(Log1mExp(-logF) - logF) // (1-F)/F
+	term := math.Exp(float64(l) * logF)      // m = 0: F^l
+	s := term
+	for m := 0; m+1 < j; m++ {
+		term *= float64(l-m) / float64(m+1) * odds
+		s += term
 	}
 	return min(s, 1)
 }

@@ -1,7 +1,6 @@
 package category
 
 import (
-	"maps"
 	"slices"
 
 	"rivalmix/alerts"
@@ -10,6 +9,11 @@ import (
 // HistoryLimit is how many completed refits a category's history keeps
 // (the latest); older points are dropped.
 const HistoryLimit = 104
+
+// membershipRefits is how many of the latest history points keep their
+// memberships (the product page's membership over refits); older points
+// drop them to bound memory (N products times segments per point).
+const membershipRefits = 26
 
 // historyMembership is the least membership a history point keeps for a
 // product; smaller ones read as 0.
@@ -37,8 +41,8 @@ type RefitPoint struct {
 	// Missed are the refit's missed-competitor events.
 	Missed []AlertView `json:"missed,omitempty"`
 	// Membership maps product to segment id to membership (at least
-	// 0.01). Kept in memory only: after a restart the older points have
-	// none.
+	// 0.01). Kept in memory only and on the latest 26 points: older
+	// points, and points from before a restart, have none.
 	Membership map[string]map[string]float32 `json:"-"`
 }
 
@@ -115,23 +119,16 @@ func appendHistory(h []RefitPoint, pt RefitPoint) []RefitPoint {
 	}
 	out := make([]RefitPoint, 0, len(h)+1)
 	out = append(out, h...)
-	return append(out, pt)
-}
-
-// cloneHistory copies the history points (their maps and slices), so a
-// reader's copy is independent of the worker's.
-func cloneHistory(h []RefitPoint) []RefitPoint {
-	out := make([]RefitPoint, len(h))
-	for i, pt := range h {
-		pt.Sizes = maps.Clone(pt.Sizes)
-		pt.Moves = slices.Clone(pt.Moves)
-		pt.Missed = slices.Clone(pt.Missed)
-		// Membership rows are never modified after the point is built.
-		pt.Membership = maps.Clone(pt.Membership)
-		out[i] = pt
+	out = append(out, pt)
+	if k := len(out) - membershipRefits - 1; k >= 0 {
+		out[k].Membership = nil // out is a new slice: readers' copies keep theirs
 	}
 	return out
 }
+
+// cloneHistory copies the slice of points. A point's maps and slices are
+// never modified once it is built, so copies may share them.
+func cloneHistory(h []RefitPoint) []RefitPoint { return slices.Clone(h) }
 
 // History returns the category's completed refits, oldest first (at most
 // HistoryLimit). The result is the caller's.

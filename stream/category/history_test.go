@@ -133,4 +133,25 @@ func TestAppendHistoryLimit(t *testing.T) {
 	if len(h) != HistoryLimit || h[0].Refit != "5" || h[len(h)-1].Refit != fmt.Sprint(HistoryLimit+4) {
 		t.Errorf("history of %d points from %s to %s", len(h), h[0].Refit, h[len(h)-1].Refit)
 	}
+	// Memberships stay on the latest points only, and dropping them
+	// leaves a reader's earlier copy alone.
+	var m []RefitPoint
+	for i := 0; i < membershipRefits+3; i++ {
+		m = appendHistory(m, RefitPoint{Refit: fmt.Sprint(i), Membership: map[string]map[string]float32{"P-1": {"S1": 1}}})
+		if i == membershipRefits-1 {
+			h = m
+		}
+	}
+	kept := 0
+	for i, pt := range m {
+		if pt.Membership != nil {
+			kept++
+			if i < len(m)-membershipRefits {
+				t.Errorf("point %d of %d keeps its memberships", i, len(m))
+			}
+		}
+	}
+	if kept != membershipRefits || h[0].Membership == nil {
+		t.Errorf("%d points keep memberships, want %d; earlier copy's first point has them: %v", kept, membershipRefits, h[0].Membership != nil)
+	}
 }
