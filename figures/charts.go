@@ -62,7 +62,7 @@ func DecayChart(id, caption string, series []DecaySeries) Figure {
 		}
 		yl := ""
 		if col == 0 {
-			yl = "relative cross-elasticity"
+			yl = "relative cross-elasticity (ratio)"
 		}
 		c.axes(f, "competitor rank (1 = strongest)", yl, xt)
 		colour := Colour(s.Colour)
@@ -319,7 +319,7 @@ func CDFChart(id, caption string, x, u []float64, threshold, pExceed float64) Fi
 	hi *= 1.08
 	f.x = newScale(0, hi, f.left, f.left+f.width, false)
 	f.y = newScale(0, 1, f.top+f.height, f.top, false)
-	c.axes(f, "relative cross-elasticity of the strongest unreported competitor", "P(next value ≤ x)", nil)
+	c.axes(f, "relative cross-elasticity (ratio) of the strongest unreported competitor", "P(next value ≤ x)", nil)
 	xs, ys := []float64{f.x.at(0)}, []float64{f.y.at(0)}
 	for i := range x {
 		if math.IsInf(x[i], 0) || math.IsNaN(x[i]) {
