@@ -195,6 +195,8 @@ type LineSeries struct {
 	Name   string
 	Colour int
 	Y      []float64
+	// Notes, when not nil, are the tooltips of the bars (aligned with Y).
+	Notes []string
 }
 
 // LineChart draws series over categorical x positions (refits), with
@@ -255,8 +257,12 @@ func lineChart(w float64, id, caption, xLabel, yLabel string, x []string, series
 		for i, v := range bars.Y {
 			if v > 0 {
 				y := f.y.at(v)
-				c.printf(`<rect x="%.1f" y="%.1f" width="%.1f" height="%.1f" fill="#9a9a9a"><title>%s: %s</title></rect>`,
-					f.x.at(float64(i))-bw/2, y, bw, base-y, html.EscapeString(x[i]), Num(v))
+				note := x[i] + ": " + Num(v)
+				if i < len(bars.Notes) && bars.Notes[i] != "" {
+					note = bars.Notes[i]
+				}
+				c.printf(`<rect x="%.1f" y="%.1f" width="%.1f" height="%.1f" fill="#9a9a9a"><title>%s</title></rect>`,
+					f.x.at(float64(i))-bw/2, y, bw, base-y, html.EscapeString(note))
 			}
 		}
 		c.raw(`</g>`)

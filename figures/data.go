@@ -283,10 +283,11 @@ func segmentIDs(h []category.RefitPoint) []string {
 // moves of each refit as bars.
 func SizesChart(id string, h []category.RefitPoint) Figure {
 	x := make([]string, len(h))
-	moves := LineSeries{Name: "moves", Y: make([]float64, len(h))}
+	moves := LineSeries{Name: "moves", Y: make([]float64, len(h)), Notes: make([]string, len(h))}
 	for r, pt := range h {
 		x[r] = pt.Refit
 		moves.Y[r] = float64(len(pt.Moves))
+		moves.Notes[r] = moveNote(pt)
 	}
 	var series []LineSeries
 	for _, sid := range segmentIDs(h) {
@@ -361,4 +362,35 @@ func MembershipOverRefits(id, product string, h []category.RefitPoint) Figure {
 	}
 	return LineChart(id, fmt.Sprintf("Membership of %s in each segment it reached at least 0.05 in, over the refits kept in memory.", product),
 		"refit", "membership (probability)", x, series, nil, true)
+}
+
+// moveNote says how many products moved between which segments at a
+// refit, for the bar's tooltip: "2026-W43: 20 moved (S1 to S3: 8, ...)".
+func moveNote(pt category.RefitPoint) string {
+	if len(pt.Moves) == 0 {
+		return ""
+	}
+	count := map[[2]string]int{}
+	var pairs [][2]string
+	for _, m := range pt.Moves {
+		k := [2]string{m.From, m.To}
+		if count[k] == 0 {
+			pairs = append(pairs, k)
+		}
+		count[k]++
+	}
+	slices.SortFunc(pairs, func(a, b [2]string) int {
+		if c := cmp.Compare(count[b], count[a]); c != 0 {
+			return c
+		}
+		if c := category.CompareIDs(a[0], b[0]); c != 0 {
+			return c
+		}
+		return category.CompareIDs(a[1], b[1])
+	})
+	parts := make([]string, len(pairs))
+	for i, k := range pairs {
+		parts[i] = fmt.Sprintf("%s to %s: %d", k[0], k[1], count[k])
+	}
+	return fmt.Sprintf("%s: %d moved (%s)", pt.Refit, len(pt.Moves), strings.Join(parts, ", "))
 }

@@ -254,3 +254,27 @@ func TestCharts(t *testing.T) {
 		t.Errorf("figure HTML %s", h)
 	}
 }
+
+// TestSizesChart: one line per segment id of the history, a gap where a
+// segment did not exist, and bars whose tooltips break the moves down by
+// segment pair.
+func TestSizesChart(t *testing.T) {
+	t.Parallel()
+	h := []category.RefitPoint{
+		{Refit: "W1", Sizes: map[string]int{"S1": 5, "S2": 5}},
+		{Refit: "W2", Sizes: map[string]int{"S1": 4, "S10": 6}, Moves: []category.MoveView{
+			{Product: "P-1", From: "S1", To: "S10"}, {Product: "P-2", From: "S2", To: "S10"}, {Product: "P-3", From: "S1", To: "S10"}}},
+	}
+	f := SizesChart("sizes", h)
+	svg := f.SVG()
+	if f.Series != 4 || !strings.Contains(svg, `data-series="S10"`) {
+		t.Errorf("sizes chart: %d series: %s", f.Series, svg)
+	}
+	if !strings.Contains(svg, "<title>W2: 3 moved (S1 to S10: 2, S2 to S10: 1)</title>") {
+		t.Errorf("bar tooltip: %s", svg)
+	}
+	// S2 exists only at W1 and S10 only at W2: single points, no lines.
+	if strings.Count(svg, "<circle") != 2 || strings.Count(svg, "<polyline") != 1 {
+		t.Errorf("gaps: %s", svg)
+	}
+}
