@@ -154,3 +154,20 @@ func TestReportGolden(t *testing.T) {
 		t.Errorf("replay report lacks the timeline over the 9 refits:\n%s", st)
 	}
 }
+
+// TestReportUnwritable: a report that cannot be written is refused
+// before any fitting, naming the flag.
+func TestReportUnwritable(t *testing.T) {
+	t.Parallel()
+	dir := t.TempDir()
+	bad := filepath.Join(dir, "no-such-dir", "r.html")
+	for _, args := range [][]string{
+		{"fit", "--in", "../../testdata/larkfield-cereal.jsonl", "--out", filepath.Join(dir, "p.json"), "--report", bad, "--quiet"},
+		{"replay", "--in", "../../testdata/larkfield-refits.jsonl", "--out", filepath.Join(dir, "e.jsonl"), "--category", "breakfast-cereal", "--report", bad, "--quiet"},
+	} {
+		code, _, stderr := runLine(t, args...)
+		if code == 0 || !strings.Contains(stderr, "--report") {
+			t.Errorf("%s with an unwritable report: exit %d, stderr %q", args[0], code, stderr)
+		}
+	}
+}
