@@ -286,7 +286,7 @@ func SizesChart(id string, h []category.RefitPoint) Figure {
 	moves := LineSeries{Name: "moves", Y: make([]float64, len(h)), Notes: make([]string, len(h))}
 	for r, pt := range h {
 		x[r] = pt.Refit
-		moves.Y[r] = float64(len(pt.Moves))
+		moves.Y[r] = float64(pt.Moved)
 		moves.Notes[r] = moveNote(pt)
 	}
 	var series []LineSeries
@@ -368,7 +368,7 @@ func MembershipOverRefits(id, product string, h []category.RefitPoint) Figure {
 // refit, for the bar's tooltip: "2026-W43: 20 moved (S1 to S3: 8, ...)".
 func moveNote(pt category.RefitPoint) string {
 	if len(pt.Moves) == 0 {
-		return ""
+		return "" // none, or not kept since a restart: the bar says the count
 	}
 	count := map[[2]string]int{}
 	var pairs [][2]string

@@ -262,7 +262,7 @@ func TestSizesChart(t *testing.T) {
 	t.Parallel()
 	h := []category.RefitPoint{
 		{Refit: "W1", Sizes: map[string]int{"S1": 5, "S2": 5}},
-		{Refit: "W2", Sizes: map[string]int{"S1": 4, "S10": 6}, Moves: []category.MoveView{
+		{Refit: "W2", Sizes: map[string]int{"S1": 4, "S10": 6}, Moved: 3, Moves: []category.MoveView{
 			{Product: "P-1", From: "S1", To: "S10"}, {Product: "P-2", From: "S2", To: "S10"}, {Product: "P-3", From: "S1", To: "S10"}}},
 	}
 	f := SizesChart("sizes", h)

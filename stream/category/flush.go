@@ -33,7 +33,7 @@ type workerMemory struct {
 	LastRefit     string        `json:"last_refit,omitempty"`
 	Refits        int           `json:"refits,omitempty"`
 	Events        int           `json:"events,omitempty"`
-	// History holds the last completed refits (without memberships).
+	// History holds the last completed refits (savedHistory).
 	History []RefitPoint `json:"history,omitempty"`
 }
 
@@ -41,7 +41,7 @@ type workerMemory struct {
 func (w *Worker) Flush() (Changes, error) {
 	mem, err := json.Marshal(workerMemory{Alerts: w.mem, SurpriseSum: w.surpriseSum, SurpriseCount: w.surpriseN,
 		Changes: w.changes, LastRefit: w.lastRefit, Refits: w.refits, Events: w.events,
-		History: w.history})
+		History: savedHistory(w.history)})
 	if err != nil {
 		return Changes{}, fmt.Errorf("category %s: alert memory: %w", w.category, err)
 	}

@@ -15,13 +15,20 @@ const HistoryLimit = 104
 // drop them to bound memory (N products times segments per point).
 const membershipRefits = 26
 
+// savedMoveRefits is how many of the latest history points keep their
+// moves in the saved memory.
+const savedMoveRefits = 8
+
 // historyMembership is the least membership a history point keeps for a
 // product; smaller ones read as 0.
 const historyMembership = 0.01
 
 // RefitPoint is one completed refit in a category's history: what the
-// dashboard's timelines and move table show. Everything but Membership
-// is saved with the worker's memory, so the timelines survive a restart.
+// dashboard's timelines and move table show. The counts are saved with
+// the worker's memory, so the timelines survive a restart; the moves only
+// of the latest savedMoveRefits points, and neither the missed alerts nor
+// the memberships, which keeps the memory that every commit rewrites
+// small.
 type RefitPoint struct {
 	Refit    string `json:"refit"`
 	Products int    `json:"products"`
@@ -36,10 +43,13 @@ type RefitPoint struct {
 	Events       int          `json:"events"`
 	// Sizes maps each point segment id to its number of products.
 	Sizes map[string]int `json:"sizes"`
-	// Moves are the refit's moved events.
+	// Moved is the number of moved events.
+	Moved int `json:"moved"`
+	// Moves are the refit's moved events (none on a saved point older
+	// than the latest savedMoveRefits).
 	Moves []MoveView `json:"moves,omitempty"`
-	// Missed are the refit's missed-competitor events.
-	Missed []AlertView `json:"missed,omitempty"`
+	// Missed are the refit's missed-competitor events (not saved).
+	Missed []AlertView `json:"-"`
 	// Membership maps product to segment id to membership (at least
 	// 0.01). Kept in memory only and on the latest 26 points: older
 	// points, and points from before a restart, have none.
@@ -106,6 +116,7 @@ func newRefitPoint(rep *RefitReport) RefitPoint {
 				Threshold: d.Threshold, Probability: d.Probability, Median: d.Median, Lo: d.Lo, Hi: d.Hi})
 		}
 	}
+	pt.Moved = len(pt.Moves)
 	slices.SortStableFunc(pt.Moves, func(a, b MoveView) int { return CompareIDs(a.Product, b.Product) })
 	slices.SortStableFunc(pt.Missed, func(a, b AlertView) int { return CompareIDs(a.Product, b.Product) })
 	return pt
@@ -133,3 +144,13 @@ func cloneHistory(h []RefitPoint) []RefitPoint { return slices.Clone(h) }
 // History returns the category's completed refits, oldest first (at most
 // HistoryLimit). The result is the caller's.
 func (w *Worker) History() []RefitPoint { return cloneHistory(w.history) }
+
+// savedHistory is the history as the worker's memory saves it: older
+// points without their moves (Missed and Membership are never saved).
+func savedHistory(h []RefitPoint) []RefitPoint {
+	out := slices.Clone(h)
+	for i := range max(len(out)-savedMoveRefits, 0) {
+		out[i].Moves = nil
+	}
+	return out
+}

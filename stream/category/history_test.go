@@ -115,12 +115,31 @@ func TestWorkerHistory(t *testing.T) {
 	}
 	for r := range bh {
 		if bh[r].Refit != h[r].Refit || len(bh[r].Sizes) != len(h[r].Sizes) || len(bh[r].Moves) != len(h[r].Moves) ||
-			len(bh[r].Missed) != len(h[r].Missed) || bh[r].ESS != h[r].ESS {
+			bh[r].Moved != len(h[r].Moves) || bh[r].ESS != h[r].ESS || bh[r].Distinct != h[r].Distinct {
 			t.Errorf("restored point %d differs: %+v vs %+v", r, bh[r], h[r])
 		}
-		if bh[r].Membership != nil {
-			t.Errorf("restored point %d has memberships; they are not saved", r)
+		if bh[r].Membership != nil || bh[r].Missed != nil {
+			t.Errorf("restored point %d has memberships or missed alerts; they are not saved", r)
 		}
+	}
+}
+
+// TestSavedHistory: the saved form keeps every point's counts but the
+// moves of the latest points only, and leaves the worker's history alone.
+func TestSavedHistory(t *testing.T) {
+	t.Parallel()
+	var h []RefitPoint
+	for i := 0; i < savedMoveRefits+4; i++ {
+		h = appendHistory(h, RefitPoint{Refit: fmt.Sprint(i), Moved: 1, Moves: []MoveView{{Product: "P-1"}}})
+	}
+	s := savedHistory(h)
+	for i, pt := range s {
+		if want := i >= len(s)-savedMoveRefits; (pt.Moves != nil) != want || pt.Moved != 1 {
+			t.Errorf("saved point %d: %d moves kept, moved %d", i, len(pt.Moves), pt.Moved)
+		}
+	}
+	if h[0].Moves == nil {
+		t.Error("saving dropped the worker's own moves")
 	}
 }
 
