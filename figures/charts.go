@@ -44,6 +44,7 @@ func DecayChart(id, caption string, series []DecaySeries) Figure {
 	if !(hi > 0) {
 		lo, hi = 0.01, 1
 	}
+	clipped := lo < decayFloor
 	lo = max(lo, decayFloor)
 	lo, hi = math.Pow(10, math.Floor(math.Log10(lo)*2)/2), math.Pow(10, math.Ceil(math.Log10(hi)*2)/2)
 	for k, s := range series {
@@ -92,6 +93,9 @@ func DecayChart(id, caption string, series []DecaySeries) Figure {
 				f.x.at(float64(j+1)), f.y.at(clampLog(v, lo, hi)))
 		}
 		c.raw(`</g>`)
+	}
+	if clipped {
+		caption += fmt.Sprintf(" Values below %s are drawn on the axis floor.", fmtTick(decayFloor))
 	}
 	return c.figure(id, caption, len(series))
 }
