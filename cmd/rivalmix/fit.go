@@ -17,6 +17,8 @@ import (
 
 	"rivalmix/alerts"
 	"rivalmix/sequential"
+	"rivalmix/state"
+	"rivalmix/stream/category"
 	"rivalmix/stream/input"
 )
 
@@ -24,6 +26,7 @@ import (
 type fitConfig struct {
 	in, out, category string
 	rejected          string
+	report            string
 	seed              uint64
 	sweeps, burn      int
 	thin              int
@@ -57,6 +60,7 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	fs.IntVar(&c.competitors, "competitors", input.DefaultCompetitors, "candidate competitors L for messages that do not say")
 	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
 	fs.StringVar(&c.rejected, "rejected", "", "also write rejected lines with their reasons to this file (one JSON object per line)")
+	fs.StringVar(&c.report, "report", "", "also write a self-contained HTML report (figures and tables) to this file")
 	fs.StringVar(&c.method, "method", "gibbs", "gibbs (batch sampler) or particles (the sequential updater's first population, as a new category gets it)")
 	fs.Float64Var(&c.splitMerge, "split-merge", def.SplitMerge, "split-merge proposals per sweep (whole-segment moves; 0 turns them off)")
 	pdef := sequential.DefaultParticleConfig()
@@ -90,6 +94,11 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	// now whether it can be.
 	if err := checkWritable(c.out); err != nil {
 		return fmt.Errorf("fit: --out: %w", err)
+	}
+	if c.report != "" {
+		if err := checkWritable(c.report); err != nil {
+			return fmt.Errorf("fit: --report: %w", err)
+		}
 	}
 	progress, rej, err := openOutputs(c.quiet, stderr, c.rejected)
 	if err != nil {
@@ -125,6 +134,11 @@ func runFit(ctx context.Context, args []string, stdout, stderr io.Writer) error 
 	post := newPosteriorFile(c.category, cat.ids, cat.data, draws, sum, c.similarity)
 	if err := writeJSON(c.out, post); err != nil {
 		return fmt.Errorf("fit: %w", err)
+	}
+	if c.report != "" {
+		if err := writeFitReport(c, cat, draws, sum); err != nil {
+			return fmt.Errorf("fit: --report: %w", err)
+		}
 	}
 	if c.quiet {
 		return nil
@@ -361,4 +375,34 @@ func fmtMedian(v float64) string {
 		return "-"
 	}
 	return strconv.FormatFloat(v, 'f', 3, 64)
+}
+
+// writeFitReport writes the fit's HTML report: segments as a category's
+// first refit would label them, with its alerts.
+func writeFitReport(c fitConfig, cat *categoryData, draws []sequential.Draw, sum sequential.Summary) error {
+	acfg := alerts.DefaultConfig()
+	acfg.Threshold = c.threshold
+	rep, err := category.BatchReport(c.category, "fit", cat.ids, cat.data, draws, sum, acfg)
+	if err != nil {
+		return err
+	}
+	index := make(map[string]int, len(cat.ids))
+	for i, id := range cat.ids {
+		index[id] = i
+	}
+	records := func(p string) (state.ProductRecord, bool) {
+		i, ok := index[p]
+		if !ok {
+			return state.ProductRecord{}, false
+		}
+		d := cat.data[i]
+		return state.ProductRecord{Product: p, Refit: "fit", Competitors: d.L(), Relative: d.Values()}, true
+	}
+	v, err := category.NewView(rep, records)
+	if err != nil {
+		return err
+	}
+	v.History = nil // one fit: no timeline
+	note := fmt.Sprintf("Batch fit (%s) of %s: %d products, %d draws, seed %d.", c.method, filepath.Base(c.in), len(cat.ids), len(draws), c.seed)
+	return writeReport(c.report, v, note)
 }

@@ -83,6 +83,16 @@ func (v typedValue) Set(s string) error {
 	return nil
 }
 
+// String returns the wrapped value's text; the flag package also calls
+// it on a zero typedValue (to tell a default from the zero value), which
+// wraps nothing.
+func (v typedValue) String() string {
+	if v.Value == nil {
+		return ""
+	}
+	return v.Value.String()
+}
+
 // IsBoolFlag lets a wrapped boolean flag be given without a value.
 func (v typedValue) IsBoolFlag() bool {
 	b, ok := v.Value.(interface{ IsBoolFlag() bool })

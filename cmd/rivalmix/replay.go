@@ -10,6 +10,7 @@ import (
 	"io"
 	"math"
 	"os"
+	"path/filepath"
 	"slices"
 	"text/tabwriter"
 	"time"
@@ -24,6 +25,7 @@ import (
 type replayConfig struct {
 	in, out, category, rejected string
 	posterior                   string
+	report                      string
 	similarity                  bool
 	seed                        uint64
 	particles, batch            int
@@ -53,6 +55,7 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	fs.BoolVar(&c.strict, "strict", false, "reject non-positive entries instead of dropping them")
 	fs.BoolVar(&c.quiet, "quiet", false, "print nothing but errors: no progress lines, table or totals")
 	fs.StringVar(&c.posterior, "posterior", "", "after the last refit, also write that refit's posterior in the shape of fit's posterior.json (one category: name it with --category if the input holds several)")
+	fs.StringVar(&c.report, "report", "", "after the last refit, also write a self-contained HTML report (figures, tables and the timeline over all refits) of one category: name it with --category if the input holds several")
 	fs.BoolVar(&c.similarity, "similarity", false, "with --posterior: also write the N x N co-segment probability matrix")
 	fs.StringVar(&c.at, "time", "", "event time (RFC 3339) of refits whose refit-complete line carries none (default: when the replay starts)")
 	eventFlags(fs, &c.events)
@@ -90,6 +93,11 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			return fmt.Errorf("replay: --posterior: %w", err)
 		}
 	}
+	if c.report != "" {
+		if err := checkWritable(c.report); err != nil {
+			return fmt.Errorf("replay: --report: %w", err)
+		}
+	}
 	in, err := os.Open(c.in)
 	if err != nil {
 		return fmt.Errorf("replay: --in: %w", err)
@@ -121,6 +129,11 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 			return fmt.Errorf("replay: --posterior: %w", err)
 		}
 	}
+	if c.report != "" {
+		if err := r.writeReport(); err != nil {
+			return fmt.Errorf("replay: --report: %w", err)
+		}
+	}
 	if c.quiet {
 		return nil
 	}
@@ -136,6 +149,10 @@ type replayCategory struct {
 	prev map[string]int
 	rows []replayRow
 	last *refitPosterior // the posterior at the last refit-complete
+	// with --report: the last refit's report and every refit's history
+	// point (the worker's history keeps only the latest)
+	lastRep *category.RefitReport
+	history []category.RefitPoint
 }
 
 // refitPosterior is what --posterior writes: a refit's draws, data and
@@ -150,14 +167,9 @@ type refitPosterior struct {
 // writePosterior writes the last refit's posterior of the one category
 // (--category, or the only one in the input) in fit's shape.
 func (r *replayer) writePosterior() error {
-	cat := r.cfg.category
-	if cat == "" {
-		if len(r.workers) != 1 {
-			return fmt.Errorf("the input holds %d categories; name one with --category", len(r.workers))
-		}
-		for c := range r.workers {
-			cat = c
-		}
+	cat, err := r.oneCategory()
+	if err != nil {
+		return err
 	}
 	rc, ok := r.workers[cat]
 	if !ok || rc.last == nil {
@@ -165,6 +177,41 @@ func (r *replayer) writePosterior() error {
 	}
 	lp := rc.last
 	return writeJSON(r.cfg.posterior, newPosteriorFile(cat, lp.products, lp.data, lp.draws, lp.summary, r.cfg.similarity))
+}
+
+// oneCategory returns --category, or the only category of the input.
+func (r *replayer) oneCategory() (string, error) {
+	cat := r.cfg.category
+	if cat == "" {
+		if len(r.workers) != 1 {
+			return "", fmt.Errorf("the input holds %d categories; name one with --category", len(r.workers))
+		}
+		for c := range r.workers {
+			cat = c
+		}
+	}
+	return cat, nil
+}
+
+// writeReport writes the HTML report of the one category: its last
+// refit with the timeline over every refit of the replay.
+func (r *replayer) writeReport() error {
+	cat, err := r.oneCategory()
+	if err != nil {
+		return err
+	}
+	rc, ok := r.workers[cat]
+	if !ok || rc.lastRep == nil {
+		return fmt.Errorf("category %s completed no refit", cat)
+	}
+	v, err := category.NewView(*rc.lastRep, rc.w.Record)
+	if err != nil {
+		return err
+	}
+	v.History = rc.history
+	note := fmt.Sprintf("Replay of %s: %d refits, %d particles, seed %d.", filepath.Base(r.cfg.in), len(rc.history),
+		r.wcfg.Particles.Particles, r.cfg.seed)
+	return writeReport(r.cfg.report, v, note)
 }
 
 type replayRow struct {
@@ -350,6 +397,10 @@ func (r *replayer) complete(rc *replayCategory, refit string, at, start time.Tim
 	}
 	rc.prev = cur
 	rc.rows = append(rc.rows, row)
+	if r.cfg.report != "" && len(rep.Products) > 0 && len(rep.History) > 0 {
+		rc.history = append(rc.history, rep.History[len(rep.History)-1])
+		rc.lastRep = &rep
+	}
 	if r.cfg.posterior != "" && len(rep.Products) > 0 {
 		ps := rc.w.Particles()
 		rc.last = &refitPosterior{products: rep.Products, data: ps.Data(), draws: ps.Draws(), summary: rep.Summary}

@@ -21,6 +21,7 @@ import (
 	"github.com/prometheus/client_golang/prometheus/collectors"
 
 	"rivalmix/alerts"
+	"rivalmix/figures"
 	"rivalmix/state"
 	"rivalmix/stream"
 	"rivalmix/stream/read"
@@ -36,6 +37,7 @@ type serviceFlags struct {
 	fetchWait, quiet, rejectRetry                    time.Duration
 	logLevel                                         string
 	replicas                                         int
+	coSegmentLimit                                   int
 }
 
 func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
@@ -55,6 +57,7 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
 	fs.DurationVar(&f.rejectRetry, "reject-retry", sc.RejectRetry, "how long to retry filing a rejected message on the rejected stream before stopping (nothing is lost: the batch is processed again at restart)")
 	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
+	fs.IntVar(&f.coSegmentLimit, "cosegment-limit", figures.DefaultCoSegmentLimit, "largest category (products) whose co-segment heatmap the dashboard draws")
 	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream in a NATS cluster (3 across failure domains in production)")
 }
 
@@ -173,6 +176,7 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 			return svc.ConsumerPending()
 		})
 	r.views = read.NewViews()
+	r.views.SetCoSegmentLimit(f.coSegmentLimit)
 	pc := stream.DefaultPublisherConfig()
 	pc.Stream = sc.Bus.OutputStream
 	if r.pub, err = stream.NewPublisher(r.store, r.js, pc, lg); err != nil {

@@ -33,12 +33,15 @@ type workerMemory struct {
 	LastRefit     string        `json:"last_refit,omitempty"`
 	Refits        int           `json:"refits,omitempty"`
 	Events        int           `json:"events,omitempty"`
+	// History holds the last completed refits (savedHistory).
+	History []RefitPoint `json:"history,omitempty"`
 }
 
 // Flush returns the category's changed state and forgets the change set.
 func (w *Worker) Flush() (Changes, error) {
 	mem, err := json.Marshal(workerMemory{Alerts: w.mem, SurpriseSum: w.surpriseSum, SurpriseCount: w.surpriseN,
-		Changes: w.changes, LastRefit: w.lastRefit, Refits: w.refits, Events: w.events})
+		Changes: w.changes, LastRefit: w.lastRefit, Refits: w.refits, Events: w.events,
+		History: savedHistory(w.history)})
 	if err != nil {
 		return Changes{}, fmt.Errorf("category %s: alert memory: %w", w.category, err)
 	}

@@ -3,6 +3,7 @@ package category
 import (
 	"fmt"
 	"math"
+	"slices"
 
 	"rivalmix/alerts"
 	"rivalmix/sequential"
@@ -23,6 +24,13 @@ type RefitReport struct {
 	Distinct     int
 	MeanSurprise float64 // NaN when the refit changed no datum
 	Changes      int     // data changes since the previous refit
+	// Draws are the particles' weighted draws after the refit, without
+	// their placement records, and Data the products' data (aligned with
+	// Products): what the dashboard's figures are computed from.
+	Draws []sequential.Draw
+	Data  []*sequential.Datum
+	// History is the category's completed refits, this one last.
+	History []RefitPoint
 }
 
 // CompleteRefit ends a refit: the refit-sized rejuvenation, the posterior
@@ -59,6 +67,9 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	rep.Alerts = out
 	rep.Events = out.Events
 	rep.Labels = out.Labels
+	rep.Draws, rep.Data = figureDraws(w.ps.Draws()), data
+	w.history = appendHistory(w.history, newRefitPoint(&rep))
+	rep.History = cloneHistory(w.history)
 	w.surpriseSum, w.surpriseN, w.changes = 0, 0, 0
 	w.lastRefit = refit
 	w.refits++
@@ -95,5 +106,35 @@ func (w *Worker) Current() (RefitReport, error) {
 	}
 	rep.Alerts = out
 	rep.Labels = out.Labels
+	rep.Draws, rep.Data = figureDraws(w.ps.Draws()), data
+	rep.History = cloneHistory(w.history)
+	return rep, nil
+}
+
+// figureDraws drops the draws' placement records, which the figures do
+// not use and which cost more memory than the labels.
+func figureDraws(draws []sequential.Draw) []sequential.Draw {
+	for i := range draws {
+		draws[i].Soft = nil
+	}
+	return draws
+}
+
+// BatchReport is the report of a batch fit (rivalmix fit): the summary,
+// stable segment ids and alerts that a category's first refit would give
+// with a fresh alert memory, the draws and a one-point history. cfg must
+// hold the threshold the summary was computed at.
+func BatchReport(cat, refit string, products []string, data []*sequential.Datum, draws []sequential.Draw,
+	sum sequential.Summary, cfg alerts.Config) (RefitReport, error) {
+	rep := RefitReport{Category: cat, Refit: refit, Summary: sum, Products: products, ESS: sum.ESS,
+		MeanSurprise: math.NaN(), Changes: len(products), Data: data}
+	out, err := alerts.Evaluate(cfg, alerts.Memory{}, alerts.Refit{Category: cat, Refit: refit, Products: products,
+		Data: data, Summary: sum, ESS: sum.ESS, Particles: len(draws), MeanSurprise: math.NaN()})
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", cat, refit, err)
+	}
+	rep.Alerts, rep.Events, rep.Labels = out, out.Events, out.Labels
+	rep.Draws = figureDraws(slices.Clone(draws))
+	rep.History = []RefitPoint{newRefitPoint(&rep)}
 	return rep, nil
 }

@@ -6,6 +6,7 @@ import (
 	"slices"
 
 	"rivalmix/alerts"
+	"rivalmix/sequential"
 	"rivalmix/state"
 )
 
@@ -109,6 +110,72 @@ type View struct {
 	Info     CategoryView
 	Segments []SegmentView
 	Products map[string]ProductView
+	// History is the category's completed refits, oldest first.
+	History []RefitPoint
+	// Alerts are the active missed-competitor alerts, by product id.
+	Alerts []AlertView
+	// Posterior is what the figures are computed from; nil when the
+	// refit had no products.
+	Posterior *Posterior
+}
+
+// Posterior holds a refit's weighted draws with the products' data and
+// the point segmentation: the input of the dashboard's figures. Shared by
+// readers and never modified.
+type Posterior struct {
+	Products   []string
+	Data       []*sequential.Datum
+	Draws      []sequential.Draw
+	Summary    sequential.Summary
+	SegmentIDs []string
+	// Labels are the reported segment ids, aligned with Products.
+	Labels []string
+}
+
+// Moves returns the moved events of the history, latest refit first and
+// by product id within a refit, at most limit of them (all when limit
+// <= 0).
+func (v View) Moves(limit int) []MoveView {
+	var out []MoveView
+	for i := len(v.History) - 1; i >= 0; i-- {
+		for _, m := range v.History[i].Moves {
+			if limit > 0 && len(out) >= limit {
+				return out
+			}
+			out = append(out, m)
+		}
+	}
+	return out
+}
+
+// activeAlerts lists the products whose missed-competitor alert is
+// active, with the numbers of their latest missed event in the history
+// (or, when that has left the history, the memory's probability and the
+// current next-value law).
+func activeAlerts(rep RefitReport, products map[string]ProductView) []AlertView {
+	var out []AlertView
+	for p, m := range rep.Alerts.Memory.Alert {
+		if !m.Active {
+			continue
+		}
+		found := false
+		for i := len(rep.History) - 1; i >= 0 && !found; i-- {
+			for _, a := range rep.History[i].Missed {
+				if a.Product == p {
+					out, found = append(out, a), true
+					break
+				}
+			}
+		}
+		if !found {
+			pv := products[p]
+			out = append(out, AlertView{Refit: m.Refit, Product: p, Segment: pv.Segment,
+				Threshold: float64(pv.Next.Threshold), Probability: m.Probability,
+				Median: float64(pv.Next.Median), Lo: float64(pv.Next.Lo), Hi: float64(pv.Next.Hi)})
+		}
+	}
+	slices.SortFunc(out, func(a, b AlertView) int { return CompareIDs(a.Product, b.Product) })
+	return out
 }
 
 // NewView builds the read API's view of the completed refit rep. records
@@ -149,6 +216,12 @@ func NewView(rep RefitReport, records func(product string) (state.ProductRecord,
 	}
 	for i, p := range rep.Products {
 		v.Products[p] = productView(rep, ids, i, records)
+	}
+	v.History = rep.History
+	v.Alerts = activeAlerts(rep, v.Products)
+	if len(rep.Draws) > 0 && len(rep.Data) == len(rep.Products) {
+		v.Posterior = &Posterior{Products: rep.Products, Data: rep.Data, Draws: rep.Draws, Summary: rep.Summary,
+			SegmentIDs: ids, Labels: rep.Labels}
 	}
 	return v, nil
 }

@@ -47,6 +47,8 @@ type Worker struct {
 	surpriseSum float64
 	surpriseN   int
 	changes     int
+	// completed refits, oldest first (at most HistoryLimit)
+	history []RefitPoint
 	// since the last Flush
 	dirty map[string]bool
 }
@@ -91,7 +93,7 @@ func RestoreWorker(category string, cfg WorkerConfig, snapshot, alertMemory []by
 			return nil, fmt.Errorf("category %s: alert memory: %w", category, err)
 		}
 		w.mem, w.surpriseSum, w.surpriseN, w.changes, w.lastRefit = m.Alerts, m.SurpriseSum, m.SurpriseCount, m.Changes, m.LastRefit
-		w.refits, w.events = m.Refits, m.Events
+		w.refits, w.events, w.history = m.Refits, m.Events, m.History
 	}
 	for _, r := range records {
 		w.records[r.Product] = r

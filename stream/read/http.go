@@ -5,20 +5,13 @@ import (
 	"encoding/json"
 	"errors"
 	"fmt"
-	"html/template"
 	"log/slog"
 	"net"
 	"net/http"
-	"net/url"
-	"strconv"
-	"strings"
 	"time"
 
 	"github.com/prometheus/client_golang/prometheus"
 	"github.com/prometheus/client_golang/prometheus/promhttp"
-
-	"rivalmix/alerts"
-	"rivalmix/stream/category"
 )
 
 // httpShutdownTimeout bounds how long Serve waits for requests in flight
@@ -72,13 +65,17 @@ func Serve(ctx context.Context, ln net.Listener, h http.Handler, lg *slog.Logger
 
 // NewHTTPHandler returns the HTTP read surface:
 //
-//	GET /                                                  dashboard page (HTML)
+//	GET /                                                  dashboard: categories and their segments (HTML)
+//	GET /categories/{category}                             dashboard: a category's figures and tables (HTML)
+//	GET /categories/{category}/products/{product}          dashboard: one product (HTML)
 //	GET /metrics                                           Prometheus metrics from reg
 //	GET /healthz                                           200 "ok" while the process runs
 //	GET /readyz                                            200 "ok" when ready() is nil, else 503 and the reason
 //	GET /v1/categories                                     CategoriesResponse
 //	GET /v1/categories/{category}/segments                 SegmentsResponse
 //	GET /v1/categories/{category}/products/{product}       ProductView
+//	GET /v1/categories/{category}/moves                    MovesResponse
+//	GET /v1/categories/{category}/alerts                   AlertsResponse
 //
 // Errors of the JSON API are ErrorResponse bodies: 404 for an unknown
 // category, product or path, 405 for a method other than GET or HEAD. A nil ready means always ready; a
@@ -94,7 +91,7 @@ func NewHTTPHandler(views *Views, reg prometheus.Gatherer, ready func() error, l
 	if ready == nil {
 		ready = func() error { return nil }
 	}
-	h := &httpAPI{views: views, lg: lg}
+	h := &httpAPI{views: views, lg: lg, pages: newPageCache()}
 	mux := http.NewServeMux()
 	mux.Handle("GET /metrics", promhttp.HandlerFor(reg, promhttp.HandlerOpts{
 		ErrorLog:      slog.NewLogLogger(lg.Handler(), slog.LevelError),
@@ -129,7 +126,25 @@ func NewHTTPHandler(views *Views, reg prometheus.Gatherer, ready func() error, l
 		}
 		h.json(w, http.StatusOK, resp)
 	})
-	mux.HandleFunc("GET /{$}", h.dashboard)
+	mux.HandleFunc("GET /v1/categories/{category}/moves", func(w http.ResponseWriter, r *http.Request) {
+		resp, err := views.ReadMoves(r.PathValue("category"))
+		if err != nil {
+			h.fail(w, err)
+			return
+		}
+		h.json(w, http.StatusOK, resp)
+	})
+	mux.HandleFunc("GET /v1/categories/{category}/alerts", func(w http.ResponseWriter, r *http.Request) {
+		resp, err := views.ReadAlerts(r.PathValue("category"))
+		if err != nil {
+			h.fail(w, err)
+			return
+		}
+		h.json(w, http.StatusOK, resp)
+	})
+	mux.HandleFunc("GET /{$}", h.index)
+	mux.HandleFunc("GET /categories/{category}", h.categoryPage)
+	mux.HandleFunc("GET /categories/{category}/products/{product}", h.productPage)
 	mux.HandleFunc("/", func(w http.ResponseWriter, r *http.Request) {
 		// The catch-all also receives other methods on the GET paths;
 		// those are 405, not 404.
@@ -148,6 +163,7 @@ func NewHTTPHandler(views *Views, reg prometheus.Gatherer, ready func() error, l
 type httpAPI struct {
 	views *Views
 	lg    *slog.Logger
+	pages *pageCache
 }
 
 func (h *httpAPI) text(w http.ResponseWriter, code int, body string) {
@@ -182,87 +198,3 @@ func (h *httpAPI) fail(w http.ResponseWriter, err error) {
 	}
 	h.json(w, code, ErrorResponse{Error: err.Error()})
 }
-
-// dashboardMembers is how many members of a segment the page lists.
-const dashboardMembers = 12
-
-type dashboardSegment struct {
-	category.SegmentView
-	Shown []string
-	More  int
-}
-
-type dashboardCategory struct {
-	category.CategoryView
-	Segments []dashboardSegment
-}
-
-func (h *httpAPI) dashboard(w http.ResponseWriter, r *http.Request) {
-	var page struct{ Categories []dashboardCategory }
-	for _, c := range h.views.Categories() {
-		dc := dashboardCategory{CategoryView: c}
-		if segs, ok := h.views.Segments(c.Name); ok {
-			for _, s := range segs {
-				ds := dashboardSegment{SegmentView: s, Shown: s.Members}
-				if len(s.Members) > dashboardMembers {
-					ds.Shown, ds.More = s.Members[:dashboardMembers], len(s.Members)-dashboardMembers
-				}
-				dc.Segments = append(dc.Segments, ds)
-			}
-		}
-		page.Categories = append(page.Categories, dc)
-	}
-	var b strings.Builder
-	if err := dashboardPage.Execute(&b, page); err != nil {
-		h.lg.Error("http render dashboard", "err", err)
-		h.text(w, http.StatusInternalServerError, "cannot render the dashboard\n")
-		return
-	}
-	w.Header().Set("Content-Type", "text/html; charset=utf-8")
-	w.Header().Set("Cache-Control", "no-store")
-	if _, err := w.Write([]byte(b.String())); err != nil {
-		h.lg.Debug("http write", "err", err)
-	}
-}
-
-// num formats a view number for the page: three significant digits, or a
-// dash when it is not defined.
-func num(f alerts.Float) string {
-	if !f.Defined() {
-		return "–"
-	}
-	return strconv.FormatFloat(float64(f), 'g', 3, 64)
-}
-
-var dashboardPage = template.Must(template.New("dashboard").Funcs(template.FuncMap{"num": num, "pathEscape": url.PathEscape,
-	"caution": func() string { return alerts.Caution }}).Parse(`<!doctype html>
-<html lang="en">
-<head>
-<meta charset="utf-8">
-<meta http-equiv="refresh" content="10">
-<title>rivalmix</title>
-<style>
-body { font: 14px/1.4 system-ui, sans-serif; margin: 2em; color: #222; }
-h1 { font-size: 1.4em; } h2 { font-size: 1.15em; margin-top: 2em; }
-table { border-collapse: collapse; } th, td { padding: .25em .8em; border-bottom: 1px solid #ddd; text-align: left; vertical-align: top; }
-td.n { text-align: right; font-variant-numeric: tabular-nums; }
-.meta { color: #666; }
-</style>
-</head>
-<body>
-<h1>rivalmix segments</h1>
-<p class="meta">Segments of each category by how fast the relative cross-elasticities of its products' strongest competitors decay. JSON: <a href="/v1/categories">/v1/categories</a>; metrics: <a href="/metrics">/metrics</a>.</p>
-<p><strong>{{caution}}</strong></p>
-{{range .Categories}}{{$cat := .Name}}
-<h2>{{.Name}}</h2>
-<p class="meta">refit {{.LastRefit}} · {{.Products}} products · {{.CategoryView.Segments}} segments · ESS {{num .ESS}} · mean surprise {{num .MeanSurprise}} nats · {{.Events}} events</p>
-<table>
-<tr><th>segment</th><th>size</th><th>median 1st</th><th>median 2nd</th><th>median 3rd</th><th>reported</th><th>members</th></tr>
-{{range .Segments}}<tr><td>{{.ID}}</td><td class="n">{{.Size}}</td><td class="n">{{num (index .Medians 0)}}</td><td class="n">{{num (index .Medians 1)}}</td><td class="n">{{num (index .Medians 2)}}</td><td class="n">{{num .MeanReported}}</td><td>{{range $i, $m := .Shown}}{{if $i}}, {{end}}<a href="/v1/categories/{{pathEscape $cat}}/products/{{pathEscape $m}}">{{$m}}</a>{{end}}{{if .More}} and {{.More}} more{{end}}</td></tr>
-{{end}}</table>
-{{else}}
-<p>No refit has completed yet.</p>
-{{end}}
-</body>
-</html>
-`))

@@ -19,10 +19,30 @@ import (
 type Views struct {
 	mu   sync.RWMutex
 	cats map[string]category.View
+	gen  map[string]uint64 // Update count per category, for the page cache
+	// coLimit is the dashboard's co-segment heatmap limit (0: default).
+	coLimit int
 }
 
 // NewViews returns an empty read model.
-func NewViews() *Views { return &Views{cats: map[string]category.View{}} }
+func NewViews() *Views { return &Views{cats: map[string]category.View{}, gen: map[string]uint64{}} }
+
+// SetCoSegmentLimit sets the largest category whose co-segment heatmap
+// the dashboard draws (0: figures.DefaultCoSegmentLimit).
+func (vs *Views) SetCoSegmentLimit(n int) {
+	vs.mu.Lock()
+	defer vs.mu.Unlock()
+	vs.coLimit = n
+}
+
+// view returns a category's view, its update count and the co-segment
+// limit. The view is shared: callers must not modify it.
+func (vs *Views) view(cat string) (category.View, uint64, int, bool) {
+	vs.mu.RLock()
+	defer vs.mu.RUnlock()
+	v, ok := vs.cats[cat]
+	return v, vs.gen[cat], vs.coLimit, ok
+}
 
 // Update replaces the view of v.Info.Name with v, which must not be
 // modified afterwards.
@@ -30,6 +50,7 @@ func (vs *Views) Update(v category.View) {
 	vs.mu.Lock()
 	defer vs.mu.Unlock()
 	vs.cats[v.Info.Name] = v
+	vs.gen[v.Info.Name]++
 }
 
 // Categories returns every category with a completed refit, by name.
@@ -153,4 +174,48 @@ func (vs *Views) ReadProduct(cat, product string) (category.ProductView, error) 
 		return category.ProductView{}, fmt.Errorf("product %q in category %q: %w", product, cat, ErrNotFound)
 	}
 	return pv, nil
+}
+
+// MovesResponse is the body of GET /v1/categories/{category}/moves: the
+// moved events of the refits the category's history keeps, latest refit
+// first and by product id within a refit (at most MaxMoves).
+type MovesResponse struct {
+	Category string              `json:"category"`
+	Refit    string              `json:"refit"`
+	Moves    []category.MoveView `json:"moves"`
+}
+
+// MaxMoves bounds the moves the read API and the dashboard list.
+const MaxMoves = 200
+
+// AlertsResponse is the body of GET /v1/categories/{category}/alerts:
+// the active missed-competitor alerts, by product id.
+type AlertsResponse struct {
+	Category string               `json:"category"`
+	Refit    string               `json:"refit"`
+	Alerts   []category.AlertView `json:"alerts"`
+}
+
+// ReadMoves answers the moves query; the error wraps ErrNotFound when the
+// category has no completed refit.
+func (vs *Views) ReadMoves(cat string) (MovesResponse, error) {
+	v, _, _, ok := vs.view(cat)
+	if !ok {
+		return MovesResponse{}, fmt.Errorf("category %q: %w (no completed refit)", cat, ErrNotFound)
+	}
+	moves := v.Moves(MaxMoves)
+	if moves == nil {
+		moves = []category.MoveView{}
+	}
+	return MovesResponse{Category: cat, Refit: v.Info.LastRefit, Moves: moves}, nil
+}
+
+// ReadAlerts answers the alerts query; the error wraps ErrNotFound when
+// the category has no completed refit.
+func (vs *Views) ReadAlerts(cat string) (AlertsResponse, error) {
+	v, _, _, ok := vs.view(cat)
+	if !ok {
+		return AlertsResponse{}, fmt.Errorf("category %q: %w (no completed refit)", cat, ErrNotFound)
+	}
+	return AlertsResponse{Category: cat, Refit: v.Info.LastRefit, Alerts: append([]category.AlertView{}, v.Alerts...)}, nil
 }
