@@ -82,7 +82,7 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 		return false, nil
 	}
 	p.lastSeq = max(p.lastSeq, seq)
-	cat, err := input.CategoryFromSubject(msg.Subject(), s.cfg.Bus.InputPrefix())
+	cat, err := s.cfg.Bus.CategoryOf(msg.Subject())
 	if err != nil {
 		return false, s.reject(ctx, msg, seq, err)
 	}
