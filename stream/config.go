@@ -39,6 +39,12 @@ type ServiceConfig struct {
 	// PendingRefresh is how often the consumer's pending count behind
 	// Service.ConsumerPending is asked of the server, > 0.
 	PendingRefresh time.Duration
+	// Claims are the partition leases, used when Bus.Partitioned; Worker
+	// names this worker and Partitions and Replicas follow Bus.
+	Claims ClaimConfig
+	// MirrorBucket is the object store the partitioned service mirrors
+	// each changed category to after every commit.
+	MirrorBucket string
 }
 
 // workerConfig returns the settings of one category.
@@ -63,6 +69,8 @@ func DefaultServiceConfig() ServiceConfig {
 		Events:         alerts.DefaultCloudEventConfig(),
 		RejectRetry:    2 * time.Minute,
 		PendingRefresh: 5 * time.Second,
+		Claims:         ClaimConfig{Bucket: DefaultClaimBucket, TTL: DefaultClaimTTL},
+		MirrorBucket:   DefaultMirrorBucket,
 	}
 }
 
@@ -92,6 +100,19 @@ func (c ServiceConfig) Validate() error {
 	case c.PendingRefresh <= 0:
 		return errors.New("stream: ServiceConfig.PendingRefresh must be > 0")
 	}
+	if c.Bus.Partitioned() {
+		cc := c.clusterClaims()
+		if err := cc.Validate(); err != nil {
+			return err
+		}
+		if !workerName.MatchString(c.MirrorBucket) {
+			return fmt.Errorf("stream: ServiceConfig.MirrorBucket is %q, want letters, digits, '-', '_'", c.MirrorBucket)
+		}
+		if need := c.MinDuplicateWindow(); c.Bus.DuplicateWindow < need {
+			return fmt.Errorf("stream: BusConfig.DuplicateWindow is %s, want >= %s with partitions "+
+				"(a taken-over partition republishes the events of up to one claim TTL and one ack wait)", c.Bus.DuplicateWindow, need)
+		}
+	}
 	for cat, w := range c.PerCategory {
 		if err := w.Validate(); err != nil {
 			return fmt.Errorf("stream: category %s: %w", cat, err)
@@ -99,3 +120,16 @@ func (c ServiceConfig) Validate() error {
 	}
 	return nil
 }
+
+// clusterClaims is Claims with the partition count and replicas of the bus.
+func (c ServiceConfig) clusterClaims() ClaimConfig {
+	cc := c.Claims
+	cc.Partitions, cc.Replicas = c.Bus.Partitions, c.Bus.Replicas
+	return cc
+}
+
+// MinDuplicateWindow is the shortest output duplicate window the
+// partitioned service accepts: events republished after a takeover were
+// first published at most a claim TTL, a fetch and a commit earlier, so
+// twice the TTL plus a minute leaves a wide margin.
+func (c ServiceConfig) MinDuplicateWindow() time.Duration { return 2*c.Claims.TTL + time.Minute }

@@ -50,6 +50,7 @@ type Metrics struct {
 	refits    *prometheus.CounterVec
 	replaces  *prometheus.CounterVec
 	retries   prometheus.Counter
+	takeover  prometheus.Histogram
 	gaugeFunc []prometheus.Collector
 }
 
@@ -118,6 +119,11 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_rejected_publish_failures_total",
 			Help: "Failed attempts to publish a rejected input message to the rejected stream (each is retried).",
 		}),
+		takeover: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_partition_take_seconds",
+			Help:    "Time to take over a claimed partition (read its mirrored state, restore its categories, re-create its consumer), in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-3, 3, 10), // 1 ms .. 20 s
+		}),
 	}
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
@@ -138,7 +144,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.takeover)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -168,6 +174,9 @@ func (m *Metrics) ObserveUpdate(d time.Duration) { m.update.Observe(d.Seconds())
 
 // ObserveSettle records the time a category took to settle.
 func (m *Metrics) ObserveSettle(d time.Duration) { m.settle.Observe(d.Seconds()) }
+
+// ObserveTakeover records the time taking over one partition took.
+func (m *Metrics) ObserveTakeover(d time.Duration) { m.takeover.Observe(d.Seconds()) }
 
 // ObserveCommit records the time one state commit took.
 func (m *Metrics) ObserveCommit(d time.Duration) { m.commit.Observe(d.Seconds()) }

@@ -54,7 +54,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 // applyPart applies messages from the start of msgs until one completes
 // a refit, then the refits whose quiet period has passed.
 func (s *Service) applyPart(ctx context.Context, msgs []jetstream.Msg, now time.Time) (part, error) {
-	p := part{touched: map[string]bool{}, lastSeq: s.position}
+	p := part{touched: map[string]bool{}, lastSeq: s.curPosition()}
 	for _, msg := range msgs {
 		p.n++
 		completed, err := s.handle(ctx, msg, &p, now)
@@ -76,7 +76,7 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 		return false, fmt.Errorf("stream: message metadata: %w", err)
 	}
 	seq := md.Sequence.Stream
-	if seq <= s.position {
+	if seq <= s.curPosition() {
 		// Applied and committed before: a redelivery (rule 3).
 		p.acks = append(p.acks, pendingAck{msg, OutcomeDuplicate})
 		return false, nil
@@ -90,7 +90,13 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 	if err != nil {
 		return false, s.reject(ctx, msg, seq, err)
 	}
-	w, err := s.worker(cat)
+	if s.cur != nil && seq <= s.catPos[cat] {
+		// Applied before this partition's last takeover: the category's
+		// copy is newer than the partition's position (rule 3).
+		p.acks = append(p.acks, pendingAck{msg, OutcomeDuplicate})
+		return false, nil
+	}
+	w, err := s.worker(ctx, cat)
 	if err != nil {
 		return false, err
 	}
@@ -156,6 +162,9 @@ func (s *Service) quietRefits(p *part, now time.Time) error {
 		return nil
 	}
 	for _, cat := range slices.Sorted(maps.Keys(s.lastSeen)) {
+		if s.cur != nil && s.catPart[cat] != s.cur.id {
+			continue
+		}
 		if now.Sub(s.lastSeen[cat]) < s.cfg.QuietPeriod {
 			continue
 		}
@@ -176,12 +185,12 @@ func (s *Service) quietRefits(p *part, now time.Time) error {
 // commitPart commits p's state changes, events and input position in one
 // transaction, then acks its messages (rule 1) and wakes the publisher.
 func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
-	if len(p.touched) == 0 && p.lastSeq == s.position && len(p.acks) == 0 {
+	if len(p.touched) == 0 && p.lastSeq == s.curPosition() && len(p.acks) == 0 {
 		return nil
 	}
 	start := time.Now()
 	b := state.Batch{Outbox: p.outbox}
-	if p.lastSeq > s.position {
+	if s.cur == nil && p.lastSeq > s.position {
 		b.Position = &state.Position{Stream: s.cfg.Bus.InputStream, StreamSeq: p.lastSeq, UpdatedAt: now.UTC()}
 	}
 	for _, cat := range slices.Sorted(maps.Keys(p.touched)) {
@@ -191,11 +200,19 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 			return err
 		}
 		meta := w.Meta(now)
+		if s.cur != nil {
+			meta.Position = p.lastSeq
+		}
 		b.Categories = append(b.Categories, state.CategoryUpdate{Category: cat, Snapshot: ch.Snapshot,
 			Products: ch.Records, Alerts: ch.AlertMemory, Meta: &meta})
 	}
 	if err := s.fail("before-commit"); err != nil {
 		return err
+	}
+	if s.cur != nil && !s.claims.Valid(s.cur.id, time.Now()) {
+		// Another worker may own the partition by now: its commits, not
+		// ours, continue the partition.
+		return errClaimLost
 	}
 	t0 := time.Now()
 	if len(b.Categories) > 0 || len(b.Outbox) > 0 || b.Position != nil {
@@ -209,7 +226,16 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	if s.metrics != nil {
 		s.metrics.ObserveCommit(time.Since(t0))
 	}
-	s.position = max(s.position, p.lastSeq)
+	if s.cur != nil {
+		s.cur.position = max(s.cur.position, p.lastSeq)
+		for cat := range p.touched {
+			s.catPos[cat] = p.lastSeq
+			s.cur.categories[cat] = true
+			s.cur.dirty[cat] = true
+		}
+	} else {
+		s.position = max(s.position, p.lastSeq)
+	}
 	if err := s.fail("committed"); err != nil {
 		return err
 	}
@@ -236,19 +262,39 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	if s.pub != nil && len(p.outbox) > 0 {
 		s.pub.Notify()
 	}
+	if s.cur != nil {
+		if err := s.mirrorPartition(ctx, s.cur); err != nil {
+			// Retried after the next commit or when idle; a takeover
+			// meanwhile re-consumes from the older copy.
+			s.lg.Warn("mirror failed", "partition", s.cur.id, "err", err)
+		}
+	}
 	s.lg.Debug("part committed", "messages", p.n, "position", s.position, "events", len(p.outbox), "took", time.Since(start))
 	return nil
 }
 
-func (s *Service) worker(cat string) (*category.Worker, error) {
+func (s *Service) worker(ctx context.Context, cat string) (*category.Worker, error) {
 	if w, ok := s.workers[cat]; ok {
 		return w, nil
+	}
+	if s.cur != nil {
+		// A category new to this partition's owner: its newest copy,
+		// local or mirrored, if any.
+		if err := s.takeCategory(ctx, cat, s.cur.id); err != nil {
+			return nil, err
+		}
+		if w, ok := s.workers[cat]; ok {
+			return w, nil
+		}
 	}
 	w, err := category.NewWorker(cat, s.cfg.workerConfig(cat))
 	if err != nil {
 		return nil, err
 	}
 	s.workers[cat] = w
+	if s.cur != nil {
+		s.catPart[cat] = s.cur.id
+	}
 	return w, nil
 }
 
