@@ -36,11 +36,11 @@ type CategoryCopy struct {
 // (object partition/<p>): the position up to which all its messages are
 // applied and mirrored, and its categories.
 type PartitionCopy struct {
-	Partition  int       `json:"partition"`
-	Position   uint64    `json:"position"`
+	Partition  int               `json:"partition"`
+	Position   uint64            `json:"position"`
 	Categories map[string]uint64 `json:"categories,omitempty"`
-	Worker     string    `json:"worker"`
-	UpdatedAt  time.Time `json:"updated_at"`
+	Worker     string            `json:"worker"`
+	UpdatedAt  time.Time         `json:"updated_at"`
 }
 
 // Mirror is the cluster-wide copy of the workers' state in a JetStream
@@ -73,7 +73,7 @@ func OpenMirrorReadOnly(ctx context.Context, js jetstream.JetStream, bucket stri
 }
 
 func categoryObject(c string) string { return "category/" + c }
-func partitionObject(p int) string  { return "partition/" + strconv.Itoa(p) }
+func partitionObject(p int) string   { return "partition/" + strconv.Itoa(p) }
 
 func (m *Mirror) put(ctx context.Context, name string, v any) error {
 	b, err := json.Marshal(v)

@@ -14,6 +14,7 @@
 //	replay    run the service's update path over a file of refits and write the events
 //	simulate  write or publish a fictional category's weekly refit results
 //	inspect   print what a state file holds
+//	cluster-status  print partition holders, lag and mirrored-state age
 //	version   print the version this binary was built from
 //
 // Run "rivalmix <command> -h" for the flags of each command.
@@ -45,6 +46,7 @@ func commands() []command {
 		{"replay", "run the service's update path over a file of refits and write the events", runReplay},
 		{"simulate", "write or publish a fictional category's weekly refit results", runSimulate},
 		{"inspect", "print what a state file holds", runInspect},
+		{"cluster-status", "print which worker holds which partition, its lag and the age of its mirrored state", runClusterStatus},
 		{"version", "print the version this binary was built from", runVersion},
 	}
 }

@@ -36,6 +36,9 @@ type serviceFlags struct {
 	fetchWait, quiet, rejectRetry                    time.Duration
 	logLevel                                         string
 	replicas                                         int
+	partitions                                       int
+	claimTTL                                         time.Duration
+	workerID                                         string
 }
 
 func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
@@ -55,7 +58,10 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.DurationVar(&f.quiet, "quiet-period", sc.QuietPeriod, "complete a refit after this long without messages or a refit-complete message (0 = never)")
 	fs.DurationVar(&f.rejectRetry, "reject-retry", sc.RejectRetry, "how long to retry filing a rejected message on the rejected stream before stopping (nothing is lost: the batch is processed again at restart)")
 	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
-	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream in a NATS cluster (3 across failure domains in production)")
+	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream, consumer, claims bucket and state object store in a NATS cluster (3 across failure domains in production; the embedded server is one machine only)")
+	fs.IntVar(&f.partitions, "partitions", sc.Bus.Partitions, "partitions the categories are spread over by the server's partition() mapping; > 1 runs this worker as one of several, each partition claimed by one worker at a time (fixed when the input stream is created)")
+	fs.DurationVar(&f.claimTTL, "claim-ttl", sc.Claims.TTL, "lease lifetime of a claimed partition: a stopped worker's partitions are taken over within this plus about a second")
+	fs.StringVar(&f.workerID, "worker-id", "", "this worker's name in the claims bucket (letters, digits, '-', '_'); empty means <hostname>-<pid>")
 }
 
 func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
@@ -68,6 +74,15 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.QuietPeriod = f.quiet
 	sc.RejectRetry = f.rejectRetry
 	sc.Bus.Replicas = f.replicas
+	sc.Bus.Partitions = f.partitions
+	sc.Claims.TTL = f.claimTTL
+	sc.Claims.Worker = f.workerID
+	if sc.Claims.Worker == "" {
+		sc.Claims.Worker = defaultWorkerID()
+	}
+	if sc.Bus.Partitioned() && sc.Bus.DuplicateWindow < sc.MinDuplicateWindow() {
+		sc.Bus.DuplicateWindow = sc.MinDuplicateWindow()
+	}
 	sc.Events = f.events
 	def, per, err := loadSettings(f.configFile, sc.Worker)
 	if err != nil {
@@ -260,6 +275,22 @@ func (r *running) close() {
 			r.lg.Warn("close state", "err", err)
 		}
 	}
+}
+
+// defaultWorkerID is <hostname>-<pid> with every character outside the
+// claims bucket's key alphabet replaced by '-'.
+func defaultWorkerID() string {
+	host, err := os.Hostname()
+	if err != nil || host == "" {
+		host = "worker"
+	}
+	b := []byte(host)
+	for i, c := range b {
+		if !('a' <= c && c <= 'z' || 'A' <= c && c <= 'Z' || '0' <= c && c <= '9' || c == '_' || c == '-') {
+			b[i] = '-'
+		}
+	}
+	return string(b) + "-" + strconv.Itoa(os.Getpid())
 }
 
 // absPath is for messages: the state file as the user should find it.
