@@ -74,8 +74,13 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.QuietPeriod = f.quiet
 	sc.RejectRetry = f.rejectRetry
 	sc.Bus.Replicas = f.replicas
-	sc.Bus.Partitions = f.partitions
-	sc.Claims.TTL = f.claimTTL
+	// Zero values (flags built in code, not parsed) keep the defaults.
+	if f.partitions != 0 {
+		sc.Bus.Partitions = f.partitions
+	}
+	if f.claimTTL != 0 {
+		sc.Claims.TTL = f.claimTTL
+	}
 	sc.Claims.Worker = f.workerID
 	if sc.Claims.Worker == "" {
 		sc.Claims.Worker = defaultWorkerID()
