@@ -258,6 +258,7 @@ func (s *Service) takeCategory(ctx context.Context, cat string, p int) error {
 		}
 		pos = rc.Position
 	}
+	s.lg.Debug("category taken", "category", cat, "partition", p, "local", lm.Position, "mirrored", rc.Position, "from", pos)
 	delete(s.workers, cat)
 	if err := s.restore(cat); err != nil {
 		return err
