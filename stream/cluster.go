@@ -19,6 +19,10 @@ import (
 // acked, and the partition is dropped from memory.
 var errClaimLost = errors.New("stream: partition lease lost")
 
+// errDuplicateWindow marks an output stream whose duplicate window is too
+// short for takeovers.
+var errDuplicateWindow = errors.New("duplicate window too short")
+
 // partition is a partition this worker holds.
 type partition struct {
 	id   int
@@ -38,12 +42,24 @@ type partition struct {
 // partitions, consumes each from its own durable consumer, mirrors every
 // commit, and hands its partitions back when ctx ends.
 func (s *Service) runPartitioned(ctx context.Context) error {
-	if err := s.startPartitioned(ctx); err != nil {
+	for {
+		err := s.startPartitioned(ctx)
+		if err == nil {
+			break
+		}
 		s.setReady(err)
 		if ctx.Err() != nil {
 			return nil
 		}
-		return err
+		var apiErr *jetstream.APIError
+		if errors.As(err, &apiErr) || errors.Is(err, errDuplicateWindow) {
+			return err
+		}
+		// The cluster may still be electing leaders: try again.
+		s.lg.Warn("starting partitioned consumption; retrying", "err", err)
+		if !Sleep(ctx, time.Second) {
+			return nil
+		}
 	}
 	kctx, stopKeep := context.WithCancel(context.WithoutCancel(ctx))
 	var wg sync.WaitGroup
@@ -102,8 +118,8 @@ func (s *Service) startPartitioned(ctx context.Context) error {
 		return fmt.Errorf("stream: output stream %s: %w", bc.OutputStream, err)
 	}
 	if have, need := out.CachedInfo().Config.Duplicates, s.cfg.MinDuplicateWindow(); have < need {
-		return fmt.Errorf("stream: output stream %s has a duplicate window of %s, want >= %s so that events republished after a takeover are dropped",
-			bc.OutputStream, have, need)
+		return fmt.Errorf("stream: output stream %s has a duplicate window of %s, want >= %s so that events republished after a takeover are dropped: %w",
+			bc.OutputStream, have, need, errDuplicateWindow)
 	}
 	if s.claims, err = OpenClaims(ctx, s.js, s.cfg.clusterClaims(), s.lg); err != nil {
 		return err

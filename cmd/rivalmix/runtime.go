@@ -169,7 +169,7 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 	}
 	// The streams only: the durable consumer is the service's, which
 	// re-creates it at Run to deliver from the state file's position.
-	if err := stream.CreateStreams(ctx, r.js, sc.Bus); err != nil {
+	if err := createStreams(ctx, r.js, sc.Bus, lg); err != nil {
 		return nil, err
 	}
 	reg := prometheus.NewRegistry()
@@ -278,6 +278,25 @@ func (r *running) close() {
 	if r.store != nil {
 		if err := r.store.Close(); err != nil {
 			r.lg.Warn("close state", "err", err)
+		}
+	}
+}
+
+// createStreams creates the streams, retrying for up to a minute when
+// the server does not answer in time: a cluster that is still electing
+// its leaders, or several workers creating replicated streams at once.
+// An error the server gives (a bad configuration) is returned at once.
+func createStreams(ctx context.Context, js jetstream.JetStream, bc stream.BusConfig, lg *slog.Logger) error {
+	deadline := time.Now().Add(time.Minute)
+	for {
+		err := stream.CreateStreams(ctx, js, bc)
+		var apiErr *jetstream.APIError
+		if err == nil || errors.As(err, &apiErr) || time.Now().After(deadline) || ctx.Err() != nil {
+			return err
+		}
+		lg.Warn("creating streams; retrying", "err", err)
+		if !stream.Sleep(ctx, time.Second) {
+			return err
 		}
 	}
 }
