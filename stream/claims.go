@@ -144,18 +144,44 @@ func (c *Claims) Valid(p int, now time.Time) bool {
 	return ok && now.Before(l.sent.Add(c.cfg.TTL-c.cfg.TTL/10))
 }
 
-// Lost returns (and forgets) the partitions whose renewal was refused or
-// that expired since the last call.
+// Confirm reports whether this worker still holds p, renewing the lease
+// at once when the local clock no longer vouches for it (Valid is
+// false): the Update on the held revision succeeds only if nobody wrote
+// the key since and the server has not expired it.
+func (c *Claims) Confirm(ctx context.Context, p int) bool {
+	if c.Valid(p, time.Now()) {
+		return true
+	}
+	c.mu.Lock()
+	l, ok := c.held[p]
+	c.mu.Unlock()
+	if !ok {
+		return false
+	}
+	sent := time.Now()
+	rev, err := c.kv.Update(ctx, partitionKey(p), c.value(p), l.rev)
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	if _, still := c.held[p]; !still {
+		return false
+	}
+	if err != nil {
+		if errors.Is(err, jetstream.ErrKeyExists) || errors.Is(err, jetstream.ErrKeyNotFound) {
+			delete(c.held, p)
+			c.lost = append(c.lost, p)
+		}
+		return false
+	}
+	c.held[p] = lease{rev: rev, sent: sent}
+	return true
+}
+
+// Lost returns (and forgets) the partitions whose renewal was refused
+// since the last call. A lease the local clock no longer vouches for is
+// not among them: Confirm tries it first.
 func (c *Claims) Lost() []int {
 	c.mu.Lock()
 	defer c.mu.Unlock()
-	now := time.Now()
-	for p, l := range c.held {
-		if !now.Before(l.sent.Add(c.cfg.TTL - c.cfg.TTL/10)) {
-			c.lost = append(c.lost, p)
-			delete(c.held, p)
-		}
-	}
 	out := c.lost
 	c.lost = nil
 	slices.Sort(out)

@@ -134,8 +134,9 @@ func (s *Service) startPartitioned(ctx context.Context) error {
 // it; it returns the number of messages fetched. A lost lease drops the
 // partition and is not an error.
 func (s *Service) consumePartition(ctx context.Context, ps *partition) (int, error) {
-	if !s.claims.Valid(ps.id, time.Now()) {
+	if !s.claims.Confirm(ctx, ps.id) {
 		s.dropPartition(ps.id, "lease expired")
+		s.claims.Release(ctx, ps.id)
 		return 0, nil
 	}
 	batch, err := ps.cons.FetchNoWait(s.cfg.FetchSize)
@@ -155,6 +156,7 @@ func (s *Service) consumePartition(ctx context.Context, ps *partition) (int, err
 	s.cur = nil
 	if errors.Is(err, errClaimLost) {
 		s.dropPartition(ps.id, "lease lost before commit")
+		s.claims.Release(ctx, ps.id)
 		return len(msgs), nil
 	}
 	if err != nil {
@@ -312,7 +314,7 @@ func (s *Service) mirrorPartition(ctx context.Context, ps *partition) error {
 	if len(ps.dirty) == 0 && ps.mirrored >= ps.position {
 		return nil
 	}
-	if !s.claims.Valid(ps.id, time.Now()) {
+	if !s.claims.Confirm(ctx, ps.id) {
 		return errClaimLost
 	}
 	if s.pub != nil {

@@ -209,7 +209,7 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	if err := s.fail("before-commit"); err != nil {
 		return err
 	}
-	if s.cur != nil && !s.claims.Valid(s.cur.id, time.Now()) {
+	if s.cur != nil && !s.claims.Confirm(ctx, s.cur.id) {
 		// Another worker may own the partition by now: its commits, not
 		// ours, continue the partition.
 		return errClaimLost
