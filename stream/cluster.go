@@ -71,8 +71,12 @@ func (s *Service) runPartitioned(ctx context.Context) error {
 	s.setReady(nil)
 	s.lg.Info("consuming partitions", "stream", s.cfg.Bus.InputStream, "partitions", s.cfg.Bus.Partitions,
 		"claim_ttl", s.cfg.Claims.TTL)
-	var nextPlan time.Time
+	var nextPlan, nextPending time.Time
 	for ctx.Err() == nil {
+		if now := time.Now(); !now.Before(nextPending) {
+			nextPending = now.Add(s.cfg.PendingRefresh)
+			s.refreshPartitionsPending(ctx)
+		}
 		for _, p := range s.claims.Lost() {
 			s.dropPartition(p, "lease lost")
 		}
@@ -168,6 +172,24 @@ func (s *Service) consumePartition(ctx context.Context, ps *partition) (int, err
 		}
 	}
 	return len(msgs), nil
+}
+
+// refreshPartitionsPending sets the pending count behind ConsumerPending
+// to the sum over the partitions held; a failed request keeps the last
+// count.
+func (s *Service) refreshPartitionsPending(ctx context.Context) {
+	var sum int64
+	for _, ps := range s.parts {
+		rctx, cancel := context.WithTimeout(ctx, pendingTimeout)
+		info, err := ps.cons.Info(rctx)
+		cancel()
+		if err != nil {
+			s.lg.Debug("consumer info failed; keeping the last pending count", "partition", ps.id, "err", err)
+			return
+		}
+		sum += int64(info.NumPending) + int64(info.NumAckPending)
+	}
+	s.pending.Store(sum)
 }
 
 // plan takes free partitions up to this worker's share and gives back
