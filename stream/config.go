@@ -36,6 +36,12 @@ type ServiceConfig struct {
 	// stops with the error; nothing is lost then either, since the batch
 	// was neither committed nor acked and is processed again at restart.
 	RejectRetry time.Duration
+	// DiskFullRetry is how long a commit that failed because the state
+	// file's disk is full (ENOSPC) is retried, every second, before the
+	// service stops with the error. Meanwhile nothing is acked and Ready
+	// reports the reason; the batch in hand is committed as soon as space
+	// returns, so nothing is lost either way.
+	DiskFullRetry time.Duration
 	// PendingRefresh is how often the consumer's pending count behind
 	// Service.ConsumerPending is asked of the server, > 0.
 	PendingRefresh time.Duration
@@ -68,6 +74,7 @@ func DefaultServiceConfig() ServiceConfig {
 		QuietPeriod:    10 * time.Minute,
 		Events:         alerts.DefaultCloudEventConfig(),
 		RejectRetry:    2 * time.Minute,
+		DiskFullRetry:  30 * time.Minute,
 		PendingRefresh: 5 * time.Second,
 		Claims:         ClaimConfig{Bucket: DefaultClaimBucket, TTL: DefaultClaimTTL},
 		MirrorBucket:   DefaultMirrorBucket,
@@ -95,6 +102,8 @@ func (c ServiceConfig) Validate() error {
 		return fmt.Errorf("stream: ServiceConfig.FetchWait is %v, want > 0", c.FetchWait)
 	case c.QuietPeriod < 0:
 		return fmt.Errorf("stream: ServiceConfig.QuietPeriod is %v, want >= 0", c.QuietPeriod)
+	case c.DiskFullRetry < 0:
+		return fmt.Errorf("stream: ServiceConfig.DiskFullRetry is %v, want >= 0", c.DiskFullRetry)
 	case c.RejectRetry < 0:
 		return fmt.Errorf("stream: ServiceConfig.RejectRetry is %v, want >= 0", c.RejectRetry)
 	case c.PendingRefresh <= 0:

@@ -51,6 +51,7 @@ type Metrics struct {
 	replaces  *prometheus.CounterVec
 	retries   prometheus.Counter
 	takeover  prometheus.Histogram
+	commitErr *prometheus.CounterVec
 	gaugeFunc []prometheus.Collector
 }
 
@@ -119,6 +120,10 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Name: "rivalmix_rejected_publish_failures_total",
 			Help: "Failed attempts to publish a rejected input message to the rejected stream (each is retried).",
 		}),
+		commitErr: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_commit_failures_total",
+			Help: "Commits to the state file that failed and are retried, by reason (disk_full).",
+		}, []string{"reason"}),
 		takeover: prometheus.NewHistogram(prometheus.HistogramOpts{
 			Name:    "rivalmix_partition_take_seconds",
 			Help:    "Time to take over a claimed partition (read its mirrored state, restore its categories, re-create its consumer), in seconds.",
@@ -128,6 +133,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
 	}
+	m.commitErr.WithLabelValues("disk_full")
 	m.replaces.WithLabelValues("kept")
 	m.replaces.WithLabelValues("redrawn")
 	if outboxPending != nil {
@@ -144,7 +150,7 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.takeover)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.takeover, m.commitErr)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -174,6 +180,9 @@ func (m *Metrics) ObserveUpdate(d time.Duration) { m.update.Observe(d.Seconds())
 
 // ObserveSettle records the time a category took to settle.
 func (m *Metrics) ObserveSettle(d time.Duration) { m.settle.Observe(d.Seconds()) }
+
+// CountCommitFailure counts one failed commit that is retried.
+func (m *Metrics) CountCommitFailure(reason string) { m.commitErr.WithLabelValues(reason).Inc() }
 
 // ObserveTakeover records the time taking over one partition took.
 func (m *Metrics) ObserveTakeover(d time.Duration) { m.takeover.Observe(d.Seconds()) }

@@ -2,9 +2,11 @@ package stream
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"maps"
 	"slices"
+	"syscall"
 	"time"
 
 	"github.com/nats-io/nats.go/jetstream"
@@ -216,7 +218,7 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	}
 	t0 := time.Now()
 	if len(b.Categories) > 0 || len(b.Outbox) > 0 || b.Position != nil {
-		if err := s.store.Commit(b); err != nil {
+		if err := s.commitRetrying(b); err != nil {
 			if s.metrics != nil {
 				s.metrics.CountMessages(OutcomeFailed, len(p.acks))
 			}
@@ -271,6 +273,30 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	}
 	s.lg.Debug("part committed", "messages", p.n, "position", s.position, "events", len(p.outbox), "took", time.Since(start))
 	return nil
+}
+
+// commitRetrying commits b; while the state file's disk is full it
+// retries every second for DiskFullRetry, reporting not-ready, counting
+// rivalmix_commit_failures_total{reason="disk_full"} and logging why.
+// Nothing is acked meanwhile, so the server keeps the input.
+func (s *Service) commitRetrying(b state.Batch) error {
+	deadline := time.Now().Add(s.cfg.DiskFullRetry)
+	for {
+		err := s.store.Commit(b)
+		if err == nil {
+			s.setReady(nil)
+			return nil
+		}
+		if !errors.Is(err, syscall.ENOSPC) || time.Now().After(deadline) {
+			return err
+		}
+		if s.metrics != nil {
+			s.metrics.CountCommitFailure("disk_full")
+		}
+		s.setReady(fmt.Errorf("state file's disk is full; not acking until a commit succeeds: %w", err))
+		s.lg.Error("commit failed: disk full; retrying every second, nothing acked meanwhile", "state", s.store.Path(), "err", err)
+		time.Sleep(time.Second)
+	}
 }
 
 func (s *Service) worker(ctx context.Context, cat string) (*category.Worker, error) {
