@@ -311,9 +311,9 @@ func (s *Service) takeCategory(ctx context.Context, cat string, p int) error {
 // dropPartition forgets a partition and its categories' in-memory state;
 // the local file keeps them.
 func (s *Service) dropPartition(p int, why string) {
-	if _, ok := s.parts[p]; !ok {
-		return
-	}
+	// A partition whose take failed half-way is not in parts, but some
+	// of its categories may be in memory: forget those too.
+	_, held := s.parts[p]
 	delete(s.parts, p)
 	for cat, q := range s.catPart {
 		if q != p {
@@ -325,7 +325,9 @@ func (s *Service) dropPartition(p int, why string) {
 		delete(s.catPos, cat)
 		delete(s.catPart, cat)
 	}
-	s.lg.Info("partition dropped", "partition", p, "why", why)
+	if held {
+		s.lg.Info("partition dropped", "partition", p, "why", why)
+	}
 }
 
 // mirrorPartition puts the partition's changed categories and then its
