@@ -99,8 +99,12 @@ func dispatch(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 func usage(w io.Writer) {
 	fmt.Fprintln(w, "usage: rivalmix <command> [flags]")
 	fmt.Fprintln(w, "\ncommands:")
+	width := 0
 	for _, c := range commands() {
-		fmt.Fprintf(w, "  %-9s %s\n", c.name, c.summary)
+		width = max(width, len(c.name))
+	}
+	for _, c := range commands() {
+		fmt.Fprintf(w, "  %-*s %s\n", width+1, c.name, c.summary)
 	}
 	fmt.Fprintln(w, "\nRun 'rivalmix <command> -h' for a command's flags; 'rivalmix --version' for the version.")
 }
