@@ -96,7 +96,7 @@ func startCluster(t *testing.T) *natsCluster {
 func (c *natsCluster) url() string { return strings.Join(c.urls, ",") }
 
 // buildBinary builds rivalmix into a temporary directory.
-func buildBinary(t *testing.T) string {
+func buildBinary(t testing.TB) string {
 	t.Helper()
 	bin := filepath.Join(t.TempDir(), "rivalmix")
 	ctx, cancel := context.WithTimeout(context.Background(), 3*time.Minute)
@@ -116,7 +116,13 @@ type workerProc struct {
 	done chan error
 }
 
-func startWorker(t *testing.T, bin, dir, name, url string, extra ...string) *workerProc {
+func startWorker(t testing.TB, bin, dir, name, url string, extra ...string) *workerProc {
+	t.Helper()
+	return startWorkerEnv(t, nil, bin, dir, name, url, extra...)
+}
+
+// startWorkerEnv is startWorker with extra environment variables.
+func startWorkerEnv(t testing.TB, env []string, bin, dir, name, url string, extra ...string) *workerProc {
 	t.Helper()
 	args := []string{"serve", "--nats", url, "--state", filepath.Join(dir, name+".db"), "--http-addr", "",
 		"--worker-id", name, "--quiet-period", "0", "--particles", "32", "--batch", "16", "--fetch", "8"}
@@ -128,6 +134,9 @@ func startWorker(t *testing.T, bin, dir, name, url string, extra ...string) *wor
 	}
 	cmd := exec.Command(bin, args...)
 	cmd.Stdout, cmd.Stderr = f, f
+	if env != nil {
+		cmd.Env = append(os.Environ(), env...)
+	}
 	if err := cmd.Start(); err != nil {
 		t.Fatal(err)
 	}
@@ -152,7 +161,7 @@ func startWorker(t *testing.T, bin, dir, name, url string, extra ...string) *wor
 }
 
 // stop sends SIGTERM and waits for a clean exit.
-func (w *workerProc) stop(t *testing.T) {
+func (w *workerProc) stop(t testing.TB) {
 	t.Helper()
 	if err := w.cmd.Process.Signal(syscall.SIGTERM); err != nil {
 		t.Fatalf("%s: SIGTERM: %v", w.name, err)
@@ -211,7 +220,7 @@ func clusterInput(ncat, products, refits int) [][][2]string {
 	return out
 }
 
-func connectJS(t *testing.T, url string) (*nats.Conn, jetstream.JetStream) {
+func connectJS(t testing.TB, url string) (*nats.Conn, jetstream.JetStream) {
 	t.Helper()
 	nc, err := nats.Connect(url, nats.MaxReconnects(-1), nats.ReconnectWait(100*time.Millisecond), nats.RetryOnFailedConnect(true))
 	if err != nil {
@@ -227,7 +236,7 @@ func connectJS(t *testing.T, url string) (*nats.Conn, jetstream.JetStream) {
 
 // publishAll publishes msgs one by one, retrying each until it is
 // acknowledged (a server may be away).
-func publishAll(t *testing.T, ctx context.Context, js jetstream.JetStream, msgs [][2]string) {
+func publishAll(t testing.TB, ctx context.Context, js jetstream.JetStream, msgs [][2]string) {
 	t.Helper()
 	for _, m := range msgs {
 		for {
@@ -251,7 +260,7 @@ type outputSummary struct {
 	summaries map[string]int // category@refit -> summary events
 }
 
-func readOutput(t *testing.T, ctx context.Context, js jetstream.JetStream) (outputSummary, error) {
+func readOutput(t testing.TB, ctx context.Context, js jetstream.JetStream) (outputSummary, error) {
 	out := outputSummary{ids: map[string]int{}, summaries: map[string]int{}}
 	st, err := js.Stream(ctx, "RIVALMIX_OUT")
 	if err != nil {
@@ -287,7 +296,7 @@ func readOutput(t *testing.T, ctx context.Context, js jetstream.JetStream) (outp
 }
 
 // waitSummaries waits until every category has a summary of refit.
-func waitSummaries(t *testing.T, ctx context.Context, js jetstream.JetStream, ncat int, refit string) outputSummary {
+func waitSummaries(t testing.TB, ctx context.Context, js jetstream.JetStream, ncat int, refit string) outputSummary {
 	t.Helper()
 	for {
 		sctx, cancel := context.WithTimeout(ctx, 10*time.Second)
@@ -512,7 +521,7 @@ func mustStream(t *testing.T, ctx context.Context, js jetstream.JetStream, name 
 }
 
 // waitStream waits until a worker has created the stream.
-func waitStream(t *testing.T, ctx context.Context, js jetstream.JetStream, name string) {
+func waitStream(t testing.TB, ctx context.Context, js jetstream.JetStream, name string) {
 	t.Helper()
 	for {
 		sctx, cancel := context.WithTimeout(ctx, 5*time.Second)
