@@ -3,6 +3,7 @@ package stream
 import (
 	"context"
 	"fmt"
+	"strings"
 	"testing"
 	"time"
 )
@@ -80,5 +81,44 @@ func TestPartitionTransform(t *testing.T) {
 	bc2.Partitions = 1
 	if err := CreateStreams(ctx, js, bc2); err == nil {
 		t.Error("changing 4 partitions to 1 on a stream with messages was accepted")
+	}
+}
+
+// TestPartitionConfigValidate checks the partition and claim settings are
+// refused with the field named.
+func TestPartitionConfigValidate(t *testing.T) {
+	t.Parallel()
+	for _, tc := range []struct {
+		name string
+		edit func(*ServiceConfig)
+		want string // "" for valid
+	}{
+		{"one partition", func(c *ServiceConfig) {}, ""},
+		{"six partitions", func(c *ServiceConfig) { c.Bus.Partitions = 6; c.Claims.Worker = "w1" }, ""},
+		{"zero partitions", func(c *ServiceConfig) { c.Bus.Partitions = 0 }, "Partitions"},
+		{"too many partitions", func(c *ServiceConfig) { c.Bus.Partitions = MaxPartitions + 1 }, "Partitions"},
+		{"no worker name", func(c *ServiceConfig) { c.Bus.Partitions = 6 }, "Worker"},
+		{"bad worker name", func(c *ServiceConfig) { c.Bus.Partitions = 6; c.Claims.Worker = "a.b" }, "Worker"},
+		{"short ttl", func(c *ServiceConfig) { c.Bus.Partitions = 6; c.Claims.Worker = "w"; c.Claims.TTL = time.Millisecond }, "TTL"},
+		{"short duplicate window", func(c *ServiceConfig) {
+			c.Bus.Partitions = 6
+			c.Claims.Worker = "w"
+			c.Bus.DuplicateWindow = time.Minute
+		}, "DuplicateWindow"},
+		{"overlapping partition prefix", func(c *ServiceConfig) {
+			c.Bus.Partitions = 6
+			c.Claims.Worker = "w"
+			c.Bus.PartitionPrefix = "rivalmix.in.part"
+		}, "PartitionPrefix"},
+	} {
+		cfg := DefaultServiceConfig()
+		tc.edit(&cfg)
+		err := cfg.Validate()
+		switch {
+		case tc.want == "" && err != nil:
+			t.Errorf("%s: %v", tc.name, err)
+		case tc.want != "" && (err == nil || !strings.Contains(err.Error(), tc.want)):
+			t.Errorf("%s: error %v, want one naming %s", tc.name, err, tc.want)
+		}
 	}
 }

@@ -471,6 +471,14 @@ func TestClusterTakeover(t *testing.T) {
 	if took > ttl+5*time.Second {
 		t.Errorf("takeover took %s, want <= claim TTL %s + 5 s", took, ttl)
 	}
+	var status bytes.Buffer
+	if err := runClusterStatus(ctx, []string{"--nats", cl.url()}, &status, &status); err != nil {
+		t.Errorf("cluster-status: %v\n%s", err, status.String())
+	}
+	t.Logf("cluster-status after the takeover:\n%s", status.String())
+	if strings.Contains(status.String(), "(free)") || strings.Contains(status.String(), " "+victim.name+" ") {
+		t.Errorf("cluster-status shows a free partition or the killed worker holding one:\n%s", status.String())
+	}
 	publishAll(t, ctx, js, input[1][half:])
 	waitSummaries(t, ctx, js, ncat, "2026-W41")
 	publishAll(t, ctx, js, input[2])

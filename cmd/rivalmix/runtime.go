@@ -142,6 +142,9 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 		return nil, err
 	}
 	r.natsURL = f.natsURL
+	if r.natsURL == "" && sc.Bus.Replicas > 1 {
+		return nil, fmt.Errorf("--replicas %d needs a NATS cluster (--nats URL): the embedded server is one server on one machine and keeps one copy", sc.Bus.Replicas)
+	}
 	if r.natsURL == "" {
 		host, portStr, err := net.SplitHostPort(f.listen)
 		if err != nil {
