@@ -5,6 +5,7 @@ import (
 	"context"
 	"fmt"
 	"path/filepath"
+	"reflect"
 	"strings"
 	"testing"
 	"time"
@@ -94,7 +95,11 @@ func TestPartitionedTakeover(t *testing.T) {
 		cfg := partitionedConfig(fmt.Sprintf("w%d", w), nparts, ttl)
 		ins = append(ins, startInstance(t, srv.ClientURL(), filepath.Join(dir, fmt.Sprintf("w%d.db", w)), cfg, lg, instanceOptions{}))
 	}
-	publishInput(t, ctx, js, refits[0])
+	// Two bad inputs: one with no category (partition 0 takes those) and
+	// one that breaks the input contract in a partitioned category.
+	bad := []inputMsg{{subject: "rivalmix.in", data: []byte(`{"product":"P-1"}`)},
+		{subject: "rivalmix.in." + cats[3].name, data: []byte(`{"product":`)}}
+	publishInput(t, ctx, js, append(append([]inputMsg{}, refits[0]...), bad...))
 	waitSummaries := func(refit string) {
 		t.Helper()
 		for {
@@ -153,6 +158,13 @@ func TestPartitionedTakeover(t *testing.T) {
 		if n > 1 {
 			t.Errorf("event %s stored %d times", id, n)
 		}
+	}
+	rejected := map[string]int{}
+	for _, m := range streamMessages(t, ctx, js, "RIVALMIX_REJECTED") {
+		rejected[m.Subject]++
+	}
+	if want := map[string]int{"rivalmix.rejected._unknown": 1, "rivalmix.rejected." + cats[3].name: 1}; !reflect.DeepEqual(rejected, want) {
+		t.Errorf("rejected stream holds %v, want %v", rejected, want)
 	}
 	m, err := OpenMirrorReadOnly(ctx, js, DefaultMirrorBucket)
 	if err != nil {
