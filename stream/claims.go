@@ -133,6 +133,14 @@ func (c *Claims) Held() []int {
 	return out
 }
 
+// Revision returns the revision of the lease held on p.
+func (c *Claims) Revision(p int) (uint64, bool) {
+	c.mu.Lock()
+	defer c.mu.Unlock()
+	l, ok := c.held[p]
+	return l.rev, ok
+}
+
 // Valid reports whether the lease on p is held and, by this worker's
 // clock, at least a tenth of the TTL away from expiring. The service
 // checks it before each commit, so a worker that was paused past its

@@ -246,11 +246,34 @@ func (s *Service) takePartition(ctx context.Context, p int) error {
 	}
 	ps.position = start
 	bc := s.cfg.Bus
-	if err := s.js.DeleteConsumer(ctx, bc.InputStream, bc.PartitionConsumer(p)); err != nil && !errors.Is(err, jetstream.ErrConsumerNotFound) {
-		return fmt.Errorf("stream: delete consumer %s: %w", bc.PartitionConsumer(p), err)
+	rev, ok := s.claims.Revision(p)
+	if !ok {
+		return errClaimLost
 	}
-	if ps.cons, err = s.js.CreateConsumer(ctx, bc.InputStream, bc.PartitionConsumerConfig(p, start+1)); err != nil {
-		return fmt.Errorf("stream: create consumer %s from sequence %d: %w", bc.PartitionConsumer(p), start+1, err)
+	// The earlier takes' consumers go: a worker still fetching from one
+	// gets an error, never a message this take needs.
+	in, err := s.js.Stream(ctx, bc.InputStream)
+	if err != nil {
+		return fmt.Errorf("stream: input stream %s: %w", bc.InputStream, err)
+	}
+	names := in.ConsumerNames(ctx)
+	var old []string
+	for name := range names.Name() {
+		if _, ok := bc.partitionConsumerRev(p, name); ok {
+			old = append(old, name)
+		}
+	}
+	if err := names.Err(); err != nil {
+		return fmt.Errorf("stream: list consumers of %s: %w", bc.InputStream, err)
+	}
+	for _, name := range old {
+		if err := s.js.DeleteConsumer(ctx, bc.InputStream, name); err != nil && !errors.Is(err, jetstream.ErrConsumerNotFound) {
+			return fmt.Errorf("stream: delete consumer %s: %w", name, err)
+		}
+	}
+	cc := bc.PartitionConsumerConfig(p, rev, start+1)
+	if ps.cons, err = s.js.CreateConsumer(ctx, bc.InputStream, cc); err != nil {
+		return fmt.Errorf("stream: create consumer %s from sequence %d: %w", cc.Durable, start+1, err)
 	}
 	s.parts[p] = ps
 	if s.metrics != nil {

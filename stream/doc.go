@@ -54,9 +54,11 @@
 // NATS server itself stores rivalmix.in.<category> as
 // rivalmix.part.<p>.<category> with p = partition(N, category); every
 // server of a cluster computes the same p, and publishers need not know
-// it. Each partition has its own durable consumer (rivalmix-worker-p<p>,
-// with the streams' replica count), and is consumed by exactly one worker
-// at a time.
+// it. Each take of a partition creates its own durable consumer
+// (rivalmix-worker-p<p>-r<lease revision>, with the streams' replica
+// count) and deletes the earlier ones, so a partition is consumed by
+// exactly one worker at a time and a worker that lost its lease without
+// noticing cannot fetch messages from its successor's consumer.
 //
 // Who consumes a partition is settled by leases in a JetStream key-value
 // bucket (rivalmix-claims, max age = --claim-ttl, default 10 s): a worker

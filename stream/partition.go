@@ -4,6 +4,7 @@ import (
 	"fmt"
 	"strconv"
 	"strings"
+	"time"
 
 	"github.com/nats-io/nats.go/jetstream"
 
@@ -38,9 +39,31 @@ func (c BusConfig) PartitionTransform() *jetstream.SubjectTransformConfig {
 	}
 }
 
-// PartitionConsumer returns the durable consumer name of partition p
-// ("rivalmix-worker-p3").
+// PartitionConsumer returns the name prefix of partition p's durable
+// consumers ("rivalmix-worker-p3"). Each take of the partition creates a
+// consumer of its own, PartitionConsumer(p) + "-r<lease revision>", so a
+// worker that lost the lease and has not noticed yet can never fetch
+// (and leave unacked) messages the new holder's consumer owes it: those
+// would be redelivered to the new holder only after its position had
+// passed them.
 func (c BusConfig) PartitionConsumer(p int) string { return c.Durable + "-p" + strconv.Itoa(p) }
+
+// partitionConsumerName is the consumer of the take of p under lease
+// revision rev.
+func (c BusConfig) partitionConsumerName(p int, rev uint64) string {
+	return c.PartitionConsumer(p) + "-r" + strconv.FormatUint(rev, 10)
+}
+
+// partitionConsumerRev parses a consumer name of partition p and returns
+// its lease revision; ok is false for any other name.
+func (c BusConfig) partitionConsumerRev(p int, name string) (rev uint64, ok bool) {
+	rest, ok := strings.CutPrefix(name, c.PartitionConsumer(p)+"-r")
+	if !ok {
+		return 0, false
+	}
+	rev, err := strconv.ParseUint(rest, 10, 64)
+	return rev, err == nil
+}
 
 // partitionFilters are the stored subjects partition p consumes: its own
 // rivalmix.part.<p>.*, and for partition 0 also the input subjects the
@@ -54,12 +77,15 @@ func (c BusConfig) partitionFilters(p int) []string {
 	return f
 }
 
-// PartitionConsumerConfig returns partition p's durable pull consumer,
-// delivering from stream sequence start (from the first message when
-// start is 0), with the delivery rules of ConsumerConfig.
-func (c BusConfig) PartitionConsumerConfig(p int, start uint64) jetstream.ConsumerConfig {
+// PartitionConsumerConfig returns the durable pull consumer of the take
+// of partition p under lease revision rev, delivering from stream
+// sequence start (from the first message when start is 0), with the
+// delivery rules of ConsumerConfig. The server removes it after an hour
+// without fetches, should its worker die and no other take the partition.
+func (c BusConfig) PartitionConsumerConfig(p int, rev, start uint64) jetstream.ConsumerConfig {
 	cc := c.ConsumerConfig()
-	cc.Durable = c.PartitionConsumer(p)
+	cc.Durable = c.partitionConsumerName(p, rev)
+	cc.InactiveThreshold = time.Hour
 	cc.Description = fmt.Sprintf("rivalmix worker, partition %d of %d", p, c.Partitions)
 	cc.FilterSubjects = c.partitionFilters(p)
 	cc.Replicas = c.Replicas

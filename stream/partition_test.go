@@ -36,7 +36,7 @@ func TestPartitionTransform(t *testing.T) {
 	partOf := map[string]int{}
 	seen := 0
 	for p := range bc.Partitions {
-		cons, err := js.CreateConsumer(ctx, bc.InputStream, bc.PartitionConsumerConfig(p, 0))
+		cons, err := js.CreateConsumer(ctx, bc.InputStream, bc.PartitionConsumerConfig(p, 1, 0))
 		if err != nil {
 			t.Fatal(err)
 		}

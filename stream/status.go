@@ -2,7 +2,6 @@ package stream
 
 import (
 	"context"
-	"errors"
 	"fmt"
 	"regexp"
 	"strconv"
@@ -29,6 +28,13 @@ type PartitionStatus struct {
 	SnapshotAge time.Duration
 	// Worker is the worker that wrote the last mirror.
 	Worker string
+}
+
+func nameOf(info *jetstream.ConsumerInfo) string {
+	if info == nil {
+		return ""
+	}
+	return info.Name
 }
 
 var partitionCount = regexp.MustCompile(`partition\((\d+),`)
@@ -69,17 +75,32 @@ func ClusterStatus(ctx context.Context, js jetstream.JetStream, cfg ServiceConfi
 	if err != nil {
 		return nil, err
 	}
+	st, err := js.Stream(ctx, bc.InputStream)
+	if err != nil {
+		return nil, fmt.Errorf("stream: input stream %s: %w", bc.InputStream, err)
+	}
+	var infos []*jetstream.ConsumerInfo
+	list := st.ListConsumers(ctx)
+	for info := range list.Info() {
+		infos = append(infos, info)
+	}
+	if err := list.Err(); err != nil {
+		return nil, fmt.Errorf("stream: list consumers of %s: %w", bc.InputStream, err)
+	}
 	out := make([]PartitionStatus, n)
 	for p := range n {
 		ps := PartitionStatus{Partition: p, Holder: holders[p], Lag: -1}
-		c, err := js.Consumer(ctx, bc.InputStream, bc.PartitionConsumer(p))
-		switch {
-		case errors.Is(err, jetstream.ErrConsumerNotFound):
-		case err != nil:
-			return nil, fmt.Errorf("stream: consumer %s: %w", bc.PartitionConsumer(p), err)
-		default:
-			info := c.CachedInfo()
-			ps.Lag = int64(info.NumPending) + int64(info.NumAckPending)
+		// The newest take's consumer (the highest lease revision).
+		var newest *jetstream.ConsumerInfo
+		for _, info := range infos {
+			if rev, ok := bc.partitionConsumerRev(p, info.Name); ok {
+				if old, _ := bc.partitionConsumerRev(p, nameOf(newest)); newest == nil || rev > old {
+					newest = info
+				}
+			}
+		}
+		if newest != nil {
+			ps.Lag = int64(newest.NumPending) + int64(newest.NumAckPending)
 		}
 		pc, ok, err := mirror.Partition(ctx, p)
 		if err != nil {
