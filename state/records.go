@@ -92,6 +92,11 @@ type CategoryMeta struct {
 	Events int `json:"events,omitempty"`
 	// UpdatedAt is when the caller last changed the category (UTC).
 	UpdatedAt time.Time `json:"updated_at,omitzero"`
+	// Position, when > 0, is the input stream sequence up to which every
+	// message of the category is applied; the partitioned service keeps
+	// it per category (one worker's file holds categories of several
+	// partitions, each at its own place in the stream).
+	Position uint64 `json:"position,omitempty"`
 }
 
 // Position is how far the input stream has been applied, stored at

@@ -73,6 +73,17 @@ type BusConfig struct {
 	// acked; 0 leaves the server default (1000). It must exceed the
 	// micro-batch size.
 	MaxAckPending int
+	// Partitions is the number of partitions the categories are spread
+	// over (1, 1..MaxPartitions). With more than one, the input stream
+	// stores rivalmix.in.<category> as <PartitionPrefix>.<p>.<category>
+	// (see PartitionTransform) and each partition has its own durable
+	// consumer, claimed by one worker at a time. It is fixed when the
+	// input stream is created: CreateStreams refuses to change it on a
+	// stream that holds messages.
+	Partitions int
+	// PartitionPrefix is the literal subject prefix of stored partitioned
+	// input ("rivalmix.part"); it must not overlap the other prefixes.
+	PartitionPrefix string
 }
 
 // DefaultBusConfig returns the names from the architecture (RIVALMIX_IN
@@ -94,6 +105,8 @@ func DefaultBusConfig() BusConfig {
 		BackOff:         []time.Duration{30 * time.Second, time.Minute, 5 * time.Minute},
 		DuplicateWindow: 2 * time.Minute,
 		Replicas:        1,
+		Partitions:      1,
+		PartitionPrefix: DefaultPartitionPrefix,
 	}
 }
 
@@ -131,7 +144,16 @@ func (c BusConfig) Validate() error {
 	if err := literalSubject("RejectedPrefix", c.RejectedPrefix); err != nil {
 		return err
 	}
+	if c.Partitions < 1 || c.Partitions > MaxPartitions {
+		return fmt.Errorf("stream: BusConfig.Partitions is %d, want 1..%d", c.Partitions, MaxPartitions)
+	}
 	prefixes := []struct{ field, p string }{{"InputSubjects", in}, {"OutputSubjects", out}, {"RejectedPrefix", c.RejectedPrefix}}
+	if c.Partitioned() {
+		if err := literalSubject("PartitionPrefix", c.PartitionPrefix); err != nil {
+			return err
+		}
+		prefixes = append(prefixes, struct{ field, p string }{"PartitionPrefix", c.PartitionPrefix})
+	}
 	for i, a := range prefixes {
 		for _, b := range prefixes[i+1:] {
 			if a.p == b.p || strings.HasPrefix(a.p, b.p+".") || strings.HasPrefix(b.p, a.p+".") {
@@ -182,7 +204,7 @@ func (c BusConfig) OutputPrefix() string { return strings.TrimSuffix(c.OutputSub
 // RejectedPrefix.<category>, or RejectedPrefix._unknown when the subject
 // names no valid category.
 func (c BusConfig) RejectedSubject(inputSubject string) string {
-	cat, err := input.CategoryFromSubject(inputSubject, c.InputPrefix())
+	cat, err := c.CategoryOf(inputSubject)
 	if err != nil {
 		cat = UnknownCategory
 	}
@@ -219,6 +241,9 @@ func (c BusConfig) StreamConfigs() []jetstream.StreamConfig {
 		Storage:     jetstream.FileStorage,
 		Replicas:    c.Replicas,
 		MaxMsgSize:  c.MaxMsgSize,
+		// With partitions the server itself maps each category to its
+		// partition as the message is stored.
+		SubjectTransform: c.PartitionTransform(),
 	}
 	out := jetstream.StreamConfig{
 		Name:        c.OutputStream,
@@ -270,11 +295,45 @@ func CreateStreams(ctx context.Context, js jetstream.JetStream, cfg BusConfig) e
 		return err
 	}
 	for _, sc := range cfg.StreamConfigs() {
+		if sc.Name == cfg.InputStream {
+			if err := checkPartitioning(ctx, js, sc); err != nil {
+				return err
+			}
+		}
 		if _, err := js.CreateOrUpdateStream(ctx, sc); err != nil {
 			return fmt.Errorf("stream: create or update stream %s (subjects %v): %w", sc.Name, sc.Subjects, err)
 		}
 	}
 	return nil
+}
+
+// checkPartitioning refuses to change the partitioning of an input stream
+// that already holds messages: those stay under the subjects they were
+// stored with, so a category would be split over two partitions.
+func checkPartitioning(ctx context.Context, js jetstream.JetStream, want jetstream.StreamConfig) error {
+	st, err := js.Stream(ctx, want.Name)
+	if errors.Is(err, jetstream.ErrStreamNotFound) {
+		return nil
+	}
+	if err != nil {
+		return fmt.Errorf("stream: look up stream %s: %w", want.Name, err)
+	}
+	info := st.CachedInfo()
+	have := info.Config.SubjectTransform
+	same := (have == nil && want.SubjectTransform == nil) ||
+		(have != nil && want.SubjectTransform != nil && *have == *want.SubjectTransform)
+	if same || info.State.Msgs == 0 {
+		return nil
+	}
+	desc := func(t *jetstream.SubjectTransformConfig) string {
+		if t == nil {
+			return "no partitioning"
+		}
+		return t.Source + " -> " + t.Destination
+	}
+	return fmt.Errorf("stream: stream %s holds %d messages stored with %s; --partitions would change it to %s. "+
+		"Keep the partition count the stream was created with, or create a new input stream",
+		want.Name, info.State.Msgs, desc(have), desc(want.SubjectTransform))
 }
 
 // EnsureStreams runs CreateStreams and creates the durable consumer, or

@@ -36,9 +36,21 @@ type ServiceConfig struct {
 	// stops with the error; nothing is lost then either, since the batch
 	// was neither committed nor acked and is processed again at restart.
 	RejectRetry time.Duration
+	// DiskFullRetry is how long a commit that failed because the state
+	// file's disk is full (ENOSPC) is retried, every second, before the
+	// service stops with the error. Meanwhile nothing is acked and Ready
+	// reports the reason; the batch in hand is committed as soon as space
+	// returns, so nothing is lost either way.
+	DiskFullRetry time.Duration
 	// PendingRefresh is how often the consumer's pending count behind
 	// Service.ConsumerPending is asked of the server, > 0.
 	PendingRefresh time.Duration
+	// Claims are the partition leases, used when Bus.Partitioned; Worker
+	// names this worker and Partitions and Replicas follow Bus.
+	Claims ClaimConfig
+	// MirrorBucket is the object store the partitioned service mirrors
+	// each changed category to after every commit.
+	MirrorBucket string
 }
 
 // workerConfig returns the settings of one category.
@@ -62,7 +74,10 @@ func DefaultServiceConfig() ServiceConfig {
 		QuietPeriod:    10 * time.Minute,
 		Events:         alerts.DefaultCloudEventConfig(),
 		RejectRetry:    2 * time.Minute,
+		DiskFullRetry:  30 * time.Minute,
 		PendingRefresh: 5 * time.Second,
+		Claims:         ClaimConfig{Bucket: DefaultClaimBucket, TTL: DefaultClaimTTL},
+		MirrorBucket:   DefaultMirrorBucket,
 	}
 }
 
@@ -87,10 +102,25 @@ func (c ServiceConfig) Validate() error {
 		return fmt.Errorf("stream: ServiceConfig.FetchWait is %v, want > 0", c.FetchWait)
 	case c.QuietPeriod < 0:
 		return fmt.Errorf("stream: ServiceConfig.QuietPeriod is %v, want >= 0", c.QuietPeriod)
+	case c.DiskFullRetry < 0:
+		return fmt.Errorf("stream: ServiceConfig.DiskFullRetry is %v, want >= 0", c.DiskFullRetry)
 	case c.RejectRetry < 0:
 		return fmt.Errorf("stream: ServiceConfig.RejectRetry is %v, want >= 0", c.RejectRetry)
 	case c.PendingRefresh <= 0:
 		return errors.New("stream: ServiceConfig.PendingRefresh must be > 0")
+	}
+	if c.Bus.Partitioned() {
+		cc := c.clusterClaims()
+		if err := cc.Validate(); err != nil {
+			return err
+		}
+		if !workerName.MatchString(c.MirrorBucket) {
+			return fmt.Errorf("stream: ServiceConfig.MirrorBucket is %q, want letters, digits, '-', '_'", c.MirrorBucket)
+		}
+		if need := c.MinDuplicateWindow(); c.Bus.DuplicateWindow < need {
+			return fmt.Errorf("stream: BusConfig.DuplicateWindow is %s, want >= %s with partitions "+
+				"(a taken-over partition republishes the events of up to one claim TTL and one ack wait)", c.Bus.DuplicateWindow, need)
+		}
 	}
 	for cat, w := range c.PerCategory {
 		if err := w.Validate(); err != nil {
@@ -99,3 +129,16 @@ func (c ServiceConfig) Validate() error {
 	}
 	return nil
 }
+
+// clusterClaims is Claims with the partition count and replicas of the bus.
+func (c ServiceConfig) clusterClaims() ClaimConfig {
+	cc := c.Claims
+	cc.Partitions, cc.Replicas = c.Bus.Partitions, c.Bus.Replicas
+	return cc
+}
+
+// MinDuplicateWindow is the shortest output duplicate window the
+// partitioned service accepts: events republished after a takeover were
+// first published at most a claim TTL, a fetch and a commit earlier, so
+// twice the TTL plus a minute leaves a wide margin.
+func (c ServiceConfig) MinDuplicateWindow() time.Duration { return 2*c.Claims.TTL + time.Minute }

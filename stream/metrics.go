@@ -55,6 +55,8 @@ type Metrics struct {
 	rejected  *prometheus.CounterVec
 	active    *prometheus.GaugeVec
 	latency   prometheus.Histogram
+	takeover  prometheus.Histogram
+	commitErr *prometheus.CounterVec
 	gaugeFunc []prometheus.Collector
 }
 
@@ -208,10 +210,20 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 			Help:    "Time from a refit-complete message's arrival in the input stream to the commit of the refit's summary and alerts to the outbox, in seconds.",
 			Buckets: prometheus.ExponentialBuckets(1e-2, 2.5, 10), // 10 ms .. 38 s
 		}),
+		commitErr: prometheus.NewCounterVec(prometheus.CounterOpts{
+			Name: "rivalmix_commit_failures_total",
+			Help: "Commits to the state file that failed and are retried, by reason (disk_full).",
+		}, []string{"reason"}),
+		takeover: prometheus.NewHistogram(prometheus.HistogramOpts{
+			Name:    "rivalmix_partition_take_seconds",
+			Help:    "Time to take over a claimed partition (read its mirrored state, restore its categories, re-create its consumer), in seconds.",
+			Buckets: prometheus.ExponentialBuckets(1e-3, 3, 10), // 1 ms .. 20 s
+		}),
 	}
 	for _, o := range outcomes {
 		m.messages.WithLabelValues(string(o)) // start every outcome at 0
 	}
+	m.commitErr.WithLabelValues("disk_full")
 	m.replaces.WithLabelValues("kept")
 	m.replaces.WithLabelValues("redrawn")
 	for _, r := range rejectReasons {
@@ -231,7 +243,8 @@ func NewMetrics(reg prometheus.Registerer, outboxPending, consumerPending func()
 	}
 	if reg != nil {
 		reg.MustRegister(m.messages, m.update, m.settle, m.commit, m.essRatio, m.distinct, m.segments,
-			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.latency)
+			m.moves, m.alerts, m.surprise, m.refits, m.replaces, m.retries, m.rejected, m.active, m.latency,
+			m.takeover, m.commitErr)
 		reg.MustRegister(m.gaugeFunc...)
 	}
 	return m
@@ -273,6 +286,12 @@ func (m *Metrics) ObserveUpdate(d time.Duration) { m.update.Observe(d.Seconds())
 
 // ObserveSettle records the time a category took to settle.
 func (m *Metrics) ObserveSettle(d time.Duration) { m.settle.Observe(d.Seconds()) }
+
+// CountCommitFailure counts one failed commit that is retried.
+func (m *Metrics) CountCommitFailure(reason string) { m.commitErr.WithLabelValues(reason).Inc() }
+
+// ObserveTakeover records the time taking over one partition took.
+func (m *Metrics) ObserveTakeover(d time.Duration) { m.takeover.Observe(d.Seconds()) }
 
 // ObserveCommit records the time one state commit took.
 func (m *Metrics) ObserveCommit(d time.Duration) { m.commit.Observe(d.Seconds()) }

@@ -2,9 +2,11 @@ package stream
 
 import (
 	"context"
+	"errors"
 	"fmt"
 	"maps"
 	"slices"
+	"syscall"
 	"time"
 
 	"github.com/nats-io/nats.go/jetstream"
@@ -57,7 +59,7 @@ func (s *Service) process(ctx context.Context, msgs []jetstream.Msg, now time.Ti
 // applyPart applies messages from the start of msgs until one completes
 // a refit, then the refits whose quiet period has passed.
 func (s *Service) applyPart(ctx context.Context, msgs []jetstream.Msg, now time.Time) (part, error) {
-	p := part{touched: map[string]bool{}, lastSeq: s.position}
+	p := part{touched: map[string]bool{}, lastSeq: s.curPosition()}
 	for _, msg := range msgs {
 		p.n++
 		completed, err := s.handle(ctx, msg, &p, now)
@@ -79,13 +81,13 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 		return false, fmt.Errorf("stream: message metadata: %w", err)
 	}
 	seq := md.Sequence.Stream
-	if seq <= s.position {
+	if seq <= s.curPosition() {
 		// Applied and committed before: a redelivery (rule 3).
 		p.acks = append(p.acks, pendingAck{msg, OutcomeDuplicate})
 		return false, nil
 	}
 	p.lastSeq = max(p.lastSeq, seq)
-	cat, err := input.CategoryFromSubject(msg.Subject(), s.cfg.Bus.InputPrefix())
+	cat, err := s.cfg.Bus.CategoryOf(msg.Subject())
 	if err != nil {
 		return false, s.reject(ctx, msg, seq, err)
 	}
@@ -93,7 +95,13 @@ func (s *Service) handle(ctx context.Context, msg jetstream.Msg, p *part, now ti
 	if err != nil {
 		return false, s.reject(ctx, msg, seq, err)
 	}
-	w, err := s.worker(cat)
+	if s.cur != nil && seq <= s.catPos[cat] {
+		// Applied before this partition's last takeover: the category's
+		// copy is newer than the partition's position (rule 3).
+		p.acks = append(p.acks, pendingAck{msg, OutcomeDuplicate})
+		return false, nil
+	}
+	w, err := s.worker(ctx, cat)
 	if err != nil {
 		return false, err
 	}
@@ -160,6 +168,9 @@ func (s *Service) quietRefits(p *part, now time.Time) error {
 		return nil
 	}
 	for _, cat := range slices.Sorted(maps.Keys(s.lastSeen)) {
+		if s.cur != nil && s.catPart[cat] != s.cur.id {
+			continue
+		}
 		if now.Sub(s.lastSeen[cat]) < s.cfg.QuietPeriod {
 			continue
 		}
@@ -180,12 +191,12 @@ func (s *Service) quietRefits(p *part, now time.Time) error {
 // commitPart commits p's state changes, events and input position in one
 // transaction, then acks its messages (rule 1) and wakes the publisher.
 func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
-	if len(p.touched) == 0 && p.lastSeq == s.position && len(p.acks) == 0 {
+	if len(p.touched) == 0 && p.lastSeq == s.curPosition() && len(p.acks) == 0 {
 		return nil
 	}
 	start := time.Now()
 	b := state.Batch{Outbox: p.outbox}
-	if p.lastSeq > s.position {
+	if s.cur == nil && p.lastSeq > s.position {
 		b.Position = &state.Position{Stream: s.cfg.Bus.InputStream, StreamSeq: p.lastSeq, UpdatedAt: now.UTC()}
 	}
 	for _, cat := range slices.Sorted(maps.Keys(p.touched)) {
@@ -195,15 +206,23 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 			return err
 		}
 		meta := w.Meta(now)
+		if s.cur != nil {
+			meta.Position = p.lastSeq
+		}
 		b.Categories = append(b.Categories, state.CategoryUpdate{Category: cat, Snapshot: ch.Snapshot,
 			Products: ch.Records, Alerts: ch.AlertMemory, Meta: &meta})
 	}
 	if err := s.fail("before-commit"); err != nil {
 		return err
 	}
+	if s.cur != nil && !s.claims.Confirm(ctx, s.cur.id) {
+		// Another worker may own the partition by now: its commits, not
+		// ours, continue the partition.
+		return errClaimLost
+	}
 	t0 := time.Now()
 	if len(b.Categories) > 0 || len(b.Outbox) > 0 || b.Position != nil {
-		if err := s.store.Commit(b); err != nil {
+		if err := s.commitRetrying(b); err != nil {
 			if s.metrics != nil {
 				s.metrics.CountMessages(OutcomeFailed, len(p.acks))
 			}
@@ -216,7 +235,16 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 			s.metrics.ObserveRefitLatency(time.Since(at))
 		}
 	}
-	s.position = max(s.position, p.lastSeq)
+	if s.cur != nil {
+		s.cur.position = max(s.cur.position, p.lastSeq)
+		for cat := range p.touched {
+			s.catPos[cat] = p.lastSeq
+			s.cur.categories[cat] = true
+			s.cur.dirty[cat] = true
+		}
+	} else {
+		s.position = max(s.position, p.lastSeq)
+	}
 	if err := s.fail("committed"); err != nil {
 		return err
 	}
@@ -243,19 +271,63 @@ func (s *Service) commitPart(ctx context.Context, p part, now time.Time) error {
 	if s.pub != nil && len(p.outbox) > 0 {
 		s.pub.Notify()
 	}
+	if s.cur != nil {
+		if err := s.mirrorPartition(ctx, s.cur); err != nil {
+			// Retried after the next commit or when idle; a takeover
+			// meanwhile re-consumes from the older copy.
+			s.lg.Warn("mirror failed", "partition", s.cur.id, "err", err)
+		}
+	}
 	s.lg.Debug("part committed", "messages", p.n, "position", s.position, "events", len(p.outbox), "took", time.Since(start))
 	return nil
 }
 
-func (s *Service) worker(cat string) (*category.Worker, error) {
+// commitRetrying commits b; while the state file's disk is full it
+// retries every second for DiskFullRetry, reporting not-ready, counting
+// rivalmix_commit_failures_total{reason="disk_full"} and logging why.
+// Nothing is acked meanwhile, so the server keeps the input.
+func (s *Service) commitRetrying(b state.Batch) error {
+	deadline := time.Now().Add(s.cfg.DiskFullRetry)
+	for {
+		err := s.store.Commit(b)
+		if err == nil {
+			s.setReady(nil)
+			return nil
+		}
+		if !errors.Is(err, syscall.ENOSPC) || time.Now().After(deadline) {
+			return err
+		}
+		if s.metrics != nil {
+			s.metrics.CountCommitFailure("disk_full")
+		}
+		s.setReady(fmt.Errorf("state file's disk is full; not acking until a commit succeeds: %w", err))
+		s.lg.Error("commit failed: disk full; retrying every second, nothing acked meanwhile", "state", s.store.Path(), "err", err)
+		time.Sleep(time.Second)
+	}
+}
+
+func (s *Service) worker(ctx context.Context, cat string) (*category.Worker, error) {
 	if w, ok := s.workers[cat]; ok {
 		return w, nil
+	}
+	if s.cur != nil {
+		// A category new to this partition's owner: its newest copy,
+		// local or mirrored, if any.
+		if err := s.takeCategory(ctx, cat, s.cur.id); err != nil {
+			return nil, err
+		}
+		if w, ok := s.workers[cat]; ok {
+			return w, nil
+		}
 	}
 	w, err := category.NewWorker(cat, s.cfg.workerConfig(cat))
 	if err != nil {
 		return nil, err
 	}
 	s.workers[cat] = w
+	if s.cur != nil {
+		s.catPart[cat] = s.cur.id
+	}
 	return w, nil
 }
 

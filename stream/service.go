@@ -49,6 +49,16 @@ type Service struct {
 	// not yet acked, refreshed in the background; -1 until known.
 	pending atomic.Int64
 
+	// Partitioned mode (cfg.Bus.Partitioned), used by the service loop
+	// only: the leases, the mirror, the partitions held, the one being
+	// processed, and per category its position and partition.
+	claims  *Claims
+	mirror  *Mirror
+	parts   map[int]*partition
+	cur     *partition
+	catPos  map[string]uint64
+	catPart map[string]int
+
 	// failpoint, when set (tests only), is called at named points of a
 	// batch; a non-nil error makes process return at once, as if the
 	// process died there: nothing after that point happens.
@@ -71,8 +81,14 @@ func NewService(lg *slog.Logger, js jetstream.JetStream, store *state.Store, met
 	}
 	s := &Service{cfg: cfg, lg: lg, js: js, store: store, metrics: metrics, views: views, pub: pub,
 		workers: map[string]*category.Worker{}, lastSeen: map[string]time.Time{}, lastRefit: map[string]string{},
-		ready: errors.New("starting")}
+		ready: errors.New("starting"), parts: map[int]*partition{}, catPos: map[string]uint64{}, catPart: map[string]int{}}
 	s.pending.Store(-1)
+	if cfg.Bus.Partitioned() {
+		s.lg = lg.With("worker", cfg.Claims.Worker)
+		// Categories are restored from the newest copy, local or
+		// mirrored, when their partition is claimed.
+		return s, nil
+	}
 	cats, err := store.Categories()
 	if err != nil {
 		return nil, err
@@ -174,6 +190,15 @@ func (s *Service) setReady(err error) {
 // Position returns the input stream sequence of the last committed message.
 func (s *Service) Position() uint64 { return s.position }
 
+// curPosition is the committed position of the partition being processed,
+// or of the whole input with one partition.
+func (s *Service) curPosition() uint64 {
+	if s.cur != nil {
+		return s.cur.position
+	}
+	return s.position
+}
+
 // Categories returns the names of the categories the service holds.
 func (s *Service) Categories() []string { return slices.Sorted(maps.Keys(s.workers)) }
 
@@ -205,6 +230,9 @@ func (s *Service) consumer(ctx context.Context) (jetstream.Consumer, error) {
 // (apply, commit, ack) and returns nil. A commit failure stops it with
 // the error: the input stays unacked and is redelivered on restart.
 func (s *Service) Run(ctx context.Context) error {
+	if s.cfg.Bus.Partitioned() {
+		return s.runPartitioned(ctx)
+	}
 	cons, err := s.consumer(ctx)
 	if err != nil {
 		s.setReady(err)

@@ -14,6 +14,7 @@
 //	replay    run the service's update path over a file of refits and write the events
 //	simulate  write or publish a fictional category's weekly refit results
 //	inspect   print what a state file holds
+//	cluster-status  print partition holders, lag and mirrored-state age
 //	version   print the version this binary was built from
 //
 // Run "rivalmix <command> -h" for the flags of each command.
@@ -45,6 +46,7 @@ func commands() []command {
 		{"replay", "run the service's update path over a file of refits and write the events", runReplay},
 		{"simulate", "write or publish a fictional category's weekly refit results", runSimulate},
 		{"inspect", "print what a state file holds", runInspect},
+		{"cluster-status", "print which worker holds which partition, its lag and the age of its mirrored state", runClusterStatus},
 		{"version", "print the version this binary was built from", runVersion},
 	}
 }
@@ -97,8 +99,12 @@ func dispatch(ctx context.Context, args []string, stdout, stderr io.Writer) erro
 func usage(w io.Writer) {
 	fmt.Fprintln(w, "usage: rivalmix <command> [flags]")
 	fmt.Fprintln(w, "\ncommands:")
+	width := 0
 	for _, c := range commands() {
-		fmt.Fprintf(w, "  %-9s %s\n", c.name, c.summary)
+		width = max(width, len(c.name))
+	}
+	for _, c := range commands() {
+		fmt.Fprintf(w, "  %-*s %s\n", width+1, c.name, c.summary)
 	}
 	fmt.Fprintln(w, "\nRun 'rivalmix <command> -h' for a command's flags; 'rivalmix --version' for the version.")
 }

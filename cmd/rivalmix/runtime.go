@@ -38,6 +38,9 @@ type serviceFlags struct {
 	logLevel                                         string
 	replicas                                         int
 	coSegmentLimit                                   int
+	partitions                                       int
+	claimTTL                                         time.Duration
+	workerID                                         string
 }
 
 func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
@@ -58,7 +61,10 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.DurationVar(&f.rejectRetry, "reject-retry", sc.RejectRetry, "how long to retry filing a rejected message on the rejected stream before stopping (nothing is lost: the batch is processed again at restart)")
 	fs.StringVar(&f.logLevel, "log-level", "info", "debug, info, warn or error")
 	fs.IntVar(&f.coSegmentLimit, "cosegment-limit", figures.DefaultCoSegmentLimit, "largest category (products) whose co-segment heatmap the dashboard draws")
-	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream in a NATS cluster (3 across failure domains in production)")
+	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream, consumer, claims bucket and state object store in a NATS cluster (3 across failure domains in production; the embedded server is one machine only)")
+	fs.IntVar(&f.partitions, "partitions", sc.Bus.Partitions, "partitions the categories are spread over by the server's partition() mapping; > 1 runs this worker as one of several, each partition claimed by one worker at a time (fixed when the input stream is created)")
+	fs.DurationVar(&f.claimTTL, "claim-ttl", sc.Claims.TTL, "lease lifetime of a claimed partition: a stopped worker's partitions are taken over within this plus about a second")
+	fs.StringVar(&f.workerID, "worker-id", "", "this worker's name in the claims bucket (letters, digits, '-', '_'); empty means <hostname>-<pid>")
 }
 
 func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
@@ -71,6 +77,20 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc.QuietPeriod = f.quiet
 	sc.RejectRetry = f.rejectRetry
 	sc.Bus.Replicas = f.replicas
+	// Zero values (flags built in code, not parsed) keep the defaults.
+	if f.partitions != 0 {
+		sc.Bus.Partitions = f.partitions
+	}
+	if f.claimTTL != 0 {
+		sc.Claims.TTL = f.claimTTL
+	}
+	sc.Claims.Worker = f.workerID
+	if sc.Claims.Worker == "" {
+		sc.Claims.Worker = defaultWorkerID()
+	}
+	if sc.Bus.Partitioned() && sc.Bus.DuplicateWindow < sc.MinDuplicateWindow() {
+		sc.Bus.DuplicateWindow = sc.MinDuplicateWindow()
+	}
 	sc.Events = f.events
 	def, per, err := loadSettings(f.configFile, sc.Worker)
 	if err != nil {
@@ -125,6 +145,9 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 		return nil, err
 	}
 	r.natsURL = f.natsURL
+	if r.natsURL == "" && sc.Bus.Replicas > 1 {
+		return nil, fmt.Errorf("--replicas %d needs a NATS cluster (--nats URL): the embedded server is one server on one machine and keeps one copy", sc.Bus.Replicas)
+	}
 	if r.natsURL == "" {
 		host, portStr, err := net.SplitHostPort(f.listen)
 		if err != nil {
@@ -152,7 +175,7 @@ func start(ctx context.Context, f *serviceFlags, sc stream.ServiceConfig, lg *sl
 	}
 	// The streams only: the durable consumer is the service's, which
 	// re-creates it at Run to deliver from the state file's position.
-	if err := stream.CreateStreams(ctx, r.js, sc.Bus); err != nil {
+	if err := createStreams(ctx, r.js, sc.Bus, lg); err != nil {
 		return nil, err
 	}
 	reg := prometheus.NewRegistry()
@@ -265,6 +288,41 @@ func (r *running) close() {
 			r.lg.Warn("close state", "err", err)
 		}
 	}
+}
+
+// createStreams creates the streams, retrying for up to a minute when
+// the server does not answer in time: a cluster that is still electing
+// its leaders, or several workers creating replicated streams at once.
+// An error the server gives (a bad configuration) is returned at once.
+func createStreams(ctx context.Context, js jetstream.JetStream, bc stream.BusConfig, lg *slog.Logger) error {
+	deadline := time.Now().Add(time.Minute)
+	for {
+		err := stream.CreateStreams(ctx, js, bc)
+		var apiErr *jetstream.APIError
+		if err == nil || errors.As(err, &apiErr) || time.Now().After(deadline) || ctx.Err() != nil {
+			return err
+		}
+		lg.Warn("creating streams; retrying", "err", err)
+		if !stream.Sleep(ctx, time.Second) {
+			return err
+		}
+	}
+}
+
+// defaultWorkerID is <hostname>-<pid> with every character outside the
+// claims bucket's key alphabet replaced by '-'.
+func defaultWorkerID() string {
+	host, err := os.Hostname()
+	if err != nil || host == "" {
+		host = "worker"
+	}
+	b := []byte(host)
+	for i, c := range b {
+		if !('a' <= c && c <= 'z' || 'A' <= c && c <= 'Z' || '0' <= c && c <= '9' || c == '_' || c == '-') {
+			b[i] = '-'
+		}
+	}
+	return string(b) + "-" + strconv.Itoa(os.Getpid())
 }
 
 // absPath is for messages: the state file as the user should find it.
