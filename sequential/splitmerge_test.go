@@ -204,3 +204,178 @@ func TestGewekeSplitMerge(t *testing.T) {
 		})
 	}
 }
+
+// memoData draws a category of three segments of perSeg products each,
+// values from each segment's kernel, L = 10 candidates.
+func memoData(perSeg int, seed uint64) []*Datum {
+	src := rand.New(rand.NewPCG(seed, 41))
+	kernels := []Theta{
+		{LogA: math.Log(2), LogK: math.Log(1.5), LogS: math.Log(0.3)},
+		{LogA: math.Log(0.7), LogK: math.Log(3), LogS: math.Log(0.05)},
+		{LogA: math.Log(1.2), LogK: math.Log(0.8), LogS: math.Log(1.5)},
+	}
+	var data []*Datum
+	for i := 0; i < perSeg; i++ {
+		for _, th := range kernels {
+			ew := th.EW()
+			vals := make([]float64, 10)
+			for j := range vals {
+				vals[j] = ew.Rand(src)
+			}
+			sortDesc(vals)
+			d := MustDatum(vals[:1+src.IntN(5)], 10)
+			data = append(data, &d)
+		}
+	}
+	return data
+}
+
+// staleFits returns the number of segments of st whose memoised
+// split-merge proposal differs from the fit to their members and data
+// now, and the number that carry one.
+func staleFits(st *State) (stale, memos int) {
+	mem := st.members(nil)
+	for c := range st.segs {
+		g := &st.segs[c]
+		if g.size == 0 || g.fit == nil {
+			continue
+		}
+		memos++
+		if *g.fit != fitMembers(st.prior, st.data, mem[c]) {
+			stale++
+		}
+	}
+	return stale, memos
+}
+
+// TestFitMemoKeepsChain runs two batch chains from one seed, one reusing
+// the segments' memoised split-merge proposals and one refitting every
+// proposal, and requires the same chain, bit for bit: labels, kernels
+// and alpha after every sweep. A memo that differed from the fit it
+// replaces (a fit that depended on more than the member set and data)
+// would change an acceptance or a draw and part the chains. Every memo
+// present after a sweep must also equal the fit to its segment now.
+func TestFitMemoKeepsChain(t *testing.T) {
+	t.Parallel()
+	data := memoData(12, 1)
+	cfg := DefaultGibbsConfig()
+	cfg.SplitMerge = 4
+	sweeps := 60
+	if testing.Short() {
+		sweeps = 25
+	}
+	var chains [2]*Gibbs
+	var srcs [2]*rand.Rand
+	for k := range chains {
+		srcs[k] = rand.New(rand.NewPCG(5, 6))
+		g, err := NewGibbs(data, cfg, srcs[k])
+		if err != nil {
+			t.Fatal(err)
+		}
+		g.st.noFitMemo = k == 1
+		chains[k] = g
+	}
+	for s := 0; s < sweeps; s++ {
+		for k, g := range chains {
+			g.Sweep(srcs[k])
+		}
+		a, b := chains[0].st, chains[1].st
+		for i := range data {
+			if a.label(i) != b.label(i) {
+				t.Fatalf("sweep %d: product %d in segment %d with the memo, %d without", s, i, a.label(i), b.label(i))
+			}
+		}
+		// Bit-identical is the claim, so the comparison is exact.
+		if math.Float64bits(a.alpha) != math.Float64bits(b.alpha) {
+			t.Fatalf("sweep %d: alpha %v with the memo, %v without", s, a.alpha, b.alpha)
+		}
+		for c := range a.segs {
+			if a.segs[c].size > 0 && a.segs[c].theta != b.segs[c].theta {
+				t.Fatalf("sweep %d: segment %d kernel %+v with the memo, %+v without", s, c, a.segs[c].theta, b.segs[c].theta)
+			}
+		}
+		if stale, _ := staleFits(a); stale > 0 {
+			t.Fatalf("sweep %d: %d segments carry a fit that is not their members' fit", s, stale)
+		}
+	}
+	with, without := chains[0].Moves(), chains[1].Moves()
+	if with.FitsReused == 0 {
+		t.Errorf("the memoised chain reused no fit (%+v): the test compared nothing", with)
+	}
+	if without.FitsReused != 0 {
+		t.Errorf("the chain without the memo reused %d fits", without.FitsReused)
+	}
+	if with.FitsMade+with.FitsReused != without.FitsMade {
+		t.Errorf("fits asked for: %d + %d with the memo, %d without", with.FitsMade, with.FitsReused, without.FitsMade)
+	}
+	t.Logf("memo: %d fits reused, %d made; %+v", with.FitsReused, with.FitsMade, with)
+}
+
+// TestFitMemoClearedByReplace brings products in, builds the population,
+// makes split-merge proposals in every particle (which leave memoised
+// fits behind), then re-estimates
+// products by Replaces that keep the assignments, and requires that no
+// particle's segment carries a fit made for a member's old datum. The
+// same run with the clearing in swapDatum turned off must find such a
+// fit, so the check would notice the clearing removed.
+func TestFitMemoClearedByReplace(t *testing.T) {
+	t.Parallel()
+	data := memoData(8, 2)
+	for _, keepStale := range []bool{false, true} {
+		cfg := DefaultParticleConfig()
+		cfg.Particles = 32
+		cfg.SplitMerge = 4
+		cfg.KeepESS = 1e-9                     // keep the assignments whenever the weights are finite
+		cfg.BuildChains, cfg.BuildBurn = 4, 20 // a quick start: its accuracy is not checked
+		ps, err := NewParticles(cfg, 9, 10)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for i, d := range data {
+			if _, err := ps.Add(exactID(i), *d); err != nil {
+				t.Fatal(err)
+			}
+		}
+		ps.SettleRefit()
+		// The steps end with a scan, which clears most fits; a few more
+		// proposals (each leaving the posterior invariant) leave fits of
+		// the segments as they stand.
+		src := rand.New(rand.NewPCG(11, 12))
+		memos := 0
+		for _, st := range ps.parts {
+			st.splitMergeMoves(4, src)
+			st.keepStaleFits = keepStale
+			_, m := staleFits(st)
+			memos += m
+		}
+		if memos == 0 {
+			t.Fatal("no particle carries a memoised fit after the build: nothing to check")
+		}
+		kept0, _ := ps.ReplaceForms()
+		for i, d := range data {
+			// The same values a fifth higher: the assignments fit as well,
+			// so the Replace keeps them.
+			vals := make([]float64, d.N())
+			for j := range vals {
+				vals[j] = 1.2 * math.Exp(d.logY[j])
+			}
+			if _, err := ps.Replace(exactID(i), MustDatum(vals, d.L())); err != nil {
+				t.Fatal(err)
+			}
+		}
+		if kept, _ := ps.ReplaceForms(); kept == kept0 {
+			t.Fatal("no Replace kept its assignments: swapDatum was not exercised")
+		}
+		stale := 0
+		for _, st := range ps.parts {
+			s, _ := staleFits(st)
+			stale += s
+		}
+		switch {
+		case !keepStale && stale > 0:
+			t.Errorf("%d segments carry a fit to a member's old datum after Replaces", stale)
+		case keepStale && stale == 0:
+			t.Errorf("with the clearing off no stale fit was found: the check has no power")
+		}
+	}
+}
