@@ -378,9 +378,6 @@ func replayVsBatch(b *testing.B, layout synth.Layout, drift float64) {
 			b.Logf("after the last refit (reference spread %.4f): particles %v (meets %v); batch %v (meets %v)",
 				spread, gp, gp.meetsWith(spread), gb, gb.meetsWith(spread))
 			b.Logf("CPU over 8 refits: particles %v, batch %v, ratio %.3f", cpuParticles, cpuBatch, cpuParticles.Seconds()/cpuBatch.Seconds())
-			m := ps.Moves()
-			b.Logf("particles' split-merge: %d of %d splits and %d of %d merges accepted; segment fits reused %d, made %d",
-				m.SplitsAccepted, m.SplitsProposed, m.MergesAccepted, m.MergesProposed, m.FitsReused, m.FitsMade)
 			b.ReportMetric(cpuParticles.Seconds(), "particles-s")
 			b.ReportMetric(cpuBatch.Seconds(), "batch-s")
 			b.ReportMetric(cpuParticles.Seconds()/cpuBatch.Seconds(), "particles/batch")

@@ -62,17 +62,10 @@
 // inverse of minus its Hessian there (a Laplace approximation, found by
 // Newton steps with the analytic gradient and Hessian of the value
 // density). Write q_1, q_2 for the parts' proposals and q_U for the
-// union's. A fit is a function of its member set and their data alone:
-// its Newton steps start at the prior mean and its members are taken in
-// slot order, so both directions of the move compute the same q_1, q_2
-// and q_U. That also lets a segment keep its fit while its members and
-// their data stay the same: a later proposal that involves the segment
-// as it stands (the union of a split, a part of a merge) reuses it, and
-// an accepted move leaves the fits of the segments it made behind. Any
-// join, leave or change of a member's datum clears it. (Starting each
-// fit near its mode, from the provisional kernel or a part's drawn
-// kernel, as the first version did, made a fit a function of the
-// proposal that asked for it, and no fit could be reused.)
+// union's. A fit depends only on its members in order and on where its
+// Newton steps start, and every start is something both directions of
+// the move see: the provisional kernels, or for q_U the kernel of the
+// larger part of the split state.
 //
 // Ratio: with pi the posterior (p integrated out), splitting c with
 // kernel theta into parts 1 and 2 with kernels theta_1, theta_2 is
@@ -98,8 +91,7 @@
 // Restricted Gibbs scans (Jain and Neal 2004) from a launch state were
 // tried as the allocation and accepted half as often, so the sequential
 // allocation stays. Fits on segments of more than 32 products take their
-// first steps on the first 32 in slot order (scaled up), then one or two
-// on all.
+// first steps on the first 32 (scaled up), then one or two on all.
 //
 // # Rao-Blackwellised summaries
 //

@@ -242,30 +242,6 @@ func fitKernel(pr *Prior, data []*Datum, mem []int, start Theta, maxIter int) ke
 	return proposalAt(pr, th, h, finite(f))
 }
 
-// memberFitSteps bounds the Newton steps of the first stage of a
-// segment's fit (fitMembers), which starts from the prior mean: on a
-// subset of at most fitSubset members a step is cheap, and from that far
-// away the ascent may need more than newtonSteps to reach the mode.
-const memberFitSteps = 20
-
-// fitMembers returns the independence proposal of the split-merge move
-// for a segment of the members mem, which must be in increasing slot
-// order: the Laplace fit (fitKernel) from the prior mean, its first stage
-// on the first fitSubset members (at most memberFitSteps steps), the
-// second on them all (at most newtonSteps). It is a function of the
-// member set and the members' data alone (and the prior), so a segment
-// whose members and data have not changed since its fit can reuse it
-// (segment.fit) and the move's ratio is the same whether it does or not.
-func fitMembers(pr *Prior, data []*Datum, mem []int) kernelProposal {
-	th := Theta{pr.LogA.Mu, pr.LogK.Mu, pr.LogS.Mu}
-	sub := mem[:min(len(mem), fitSubset)]
-	th, f, _, h := newtonAscent(pr, data, sub, float64(len(mem))/float64(len(sub)), th, memberFitSteps)
-	if len(sub) < len(mem) {
-		th, f, _, h = newtonAscent(pr, data, mem, 1, th, newtonSteps)
-	}
-	return proposalAt(pr, th, h, finite(f))
-}
-
 // positiveDefinite returns the Cholesky factor of m, with a ridge added
 // to the diagonal (from 1e-3 up, tenfold) until m is positive definite;
 // false if even a ridge of 1e8 does not make it so.

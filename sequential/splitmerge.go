@@ -3,7 +3,6 @@ package sequential
 import (
 	"math"
 	"math/rand/v2"
-	"slices"
 )
 
 // ratioTerm names one term of the split-merge Metropolis-Hastings ratio.
@@ -20,19 +19,15 @@ const (
 	dropCRPFactor
 )
 
-// MoveStats counts split-merge proposals and acceptances, and the
-// proposals of current segments that were fitted (FitsMade) or reused
-// from an earlier fit to the same members and data (FitsReused).
+// MoveStats counts split-merge proposals and acceptances.
 type MoveStats struct {
 	SplitsProposed, SplitsAccepted, MergesProposed, MergesAccepted uint64
-	FitsMade, FitsReused                                           uint64
 }
 
 // Add returns the sum of two counts.
 func (m MoveStats) Add(o MoveStats) MoveStats {
 	return MoveStats{m.SplitsProposed + o.SplitsProposed, m.SplitsAccepted + o.SplitsAccepted,
-		m.MergesProposed + o.MergesProposed, m.MergesAccepted + o.MergesAccepted,
-		m.FitsMade + o.FitsMade, m.FitsReused + o.FitsReused}
+		m.MergesProposed + o.MergesProposed, m.MergesAccepted + o.MergesAccepted}
 }
 
 // provisionalSteps is the number of Newton steps of each provisional
@@ -41,37 +36,9 @@ func (m MoveStats) Add(o MoveStats) MoveStats {
 // the previous fit each time a part doubles, up to fitSubset members.
 const provisionalSteps = 1
 
-// smScratch holds the split-merge move's working lists, and the counts
-// of fits made and reused since the last splitMergeMoves.
+// smScratch holds the split-merge move's working lists.
 type smScratch struct {
-	rest, p1, p2, union, sorted []int
-	made, reused                uint64
-}
-
-// fitOf returns the proposal fitted to mem (fitMembers), sorting a copy
-// into slot order first.
-func (s *State) fitOf(mem []int) kernelProposal {
-	sc := &s.sm
-	sc.sorted = append(sc.sorted[:0], mem...)
-	slices.Sort(sc.sorted)
-	return fitMembers(s.prior, s.data, sc.sorted)
-}
-
-// segmentFit returns the proposal fitted to the members mem of segment
-// c: its memo when the members and their data have not changed since it
-// was made (join, leave and swapDatum clear it), a new fit otherwise,
-// which becomes the memo. Either way it is fitMembers of the members, so
-// the memo changes the cost of the move, not its ratio.
-func (s *State) segmentFit(c uint16, mem []int) *kernelProposal {
-	g := &s.segs[c]
-	if g.fit != nil && !s.noFitMemo {
-		s.sm.reused++
-		return g.fit
-	}
-	s.sm.made++
-	kp := s.fitOf(mem)
-	g.fit = &kp
-	return g.fit
+	rest, p1, p2, union []int
 }
 
 // randomPresent returns a uniformly chosen present slot (s.n >= 1).
@@ -242,14 +209,24 @@ func (s *State) splitLogRatio(t1, t2, tu Theta, logAlloc, logQ1, logQ2, logQU fl
 	return r
 }
 
+// unionStart is where the union's kernel fit starts: the kernel of the
+// larger part (part 1 on a tie). Both directions of the move see the
+// same split state, so both compute the same union proposal.
+func (s *State) unionStart(t1, t2 Theta) Theta {
+	if len(s.sm.p2) > len(s.sm.p1) {
+		return t2
+	}
+	return t1
+}
+
 // trySplit proposes splitting segment c, which holds anchors i and j.
 func (s *State) trySplit(i, j int, c uint16, src *rand.Rand) bool {
 	sc := &s.sm
-	logAlloc, _, _ := s.allocate(i, j, nil, src)
-	q1 := s.fitOf(sc.p1)
-	q2 := s.fitOf(sc.p2)
+	logAlloc, f1, f2 := s.allocate(i, j, nil, src)
+	q1 := fitKernel(s.prior, s.data, sc.p1, f1, newtonSteps)
+	q2 := fitKernel(s.prior, s.data, sc.p2, f2, newtonSteps)
 	t1, t2 := q1.draw(src), q2.draw(src)
-	qu := s.segmentFit(c, sc.union)
+	qu := fitKernel(s.prior, s.data, sc.union, s.unionStart(t1, t2), newtonSteps)
 	tu := s.segs[c].theta
 	r := s.splitLogRatio(t1, t2, tu, logAlloc, q1.logDensity(t1), q2.logDensity(t2), qu.logDensity(tu))
 	if !(math.Log(src.Float64()) < r) {
@@ -265,8 +242,6 @@ func (s *State) trySplit(i, j int, c uint16, src *rand.Rand) bool {
 		s.join(k, d, c2)
 	}
 	s.segs[c].setTheta(t1)
-	// The parts are now the segments: their fits are the segments' memos.
-	s.segs[c].fit, s.segs[c2].fit = &q1, &q2
 	return true
 }
 
@@ -274,11 +249,11 @@ func (s *State) trySplit(i, j int, c uint16, src *rand.Rand) bool {
 // (holding anchor j).
 func (s *State) tryMerge(i, j int, ci, cj uint16, src *rand.Rand) bool {
 	sc := &s.sm
-	logAlloc, _, _ := s.allocate(i, j, func(k int) bool { return s.label(k) == ci }, src)
+	logAlloc, f1, f2 := s.allocate(i, j, func(k int) bool { return s.label(k) == ci }, src)
 	t1, t2 := s.segs[ci].theta, s.segs[cj].theta
-	q1 := s.segmentFit(ci, sc.p1)
-	q2 := s.segmentFit(cj, sc.p2)
-	qu := s.fitOf(sc.union)
+	q1 := fitKernel(s.prior, s.data, sc.p1, f1, newtonSteps)
+	q2 := fitKernel(s.prior, s.data, sc.p2, f2, newtonSteps)
+	qu := fitKernel(s.prior, s.data, sc.union, s.unionStart(t1, t2), newtonSteps)
 	tu := qu.draw(src)
 	r := -s.splitLogRatio(t1, t2, tu, logAlloc, q1.logDensity(t1), q2.logDensity(t2), qu.logDensity(tu))
 	if !(math.Log(src.Float64()) < r) {
@@ -290,7 +265,6 @@ func (s *State) tryMerge(i, j int, ci, cj uint16, src *rand.Rand) bool {
 		s.join(k, d, ci)
 	}
 	s.segs[ci].setTheta(tu)
-	s.segs[ci].fit = &qu
 	return true
 }
 
@@ -306,7 +280,6 @@ func (s *State) splitMergeMoves(rate float64, src *rand.Rand) MoveStats {
 	if src.Float64() < rate-float64(k) {
 		k++
 	}
-	s.sm.made, s.sm.reused = 0, 0
 	for ; k > 0; k-- {
 		split, ok := s.splitMerge(src)
 		switch {
@@ -322,6 +295,5 @@ func (s *State) splitMergeMoves(rate float64, src *rand.Rand) MoveStats {
 			}
 		}
 	}
-	st.FitsMade, st.FitsReused = s.sm.made, s.sm.reused
 	return st
 }

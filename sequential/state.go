@@ -22,11 +22,6 @@ type segment struct {
 	// until one of them sets a new theta: a change of data scores the
 	// datum once per distinct kernel (Particles.memoValues).
 	memo *kernelMemo
-	// fit is the split-merge proposal fitted to the segment's members
-	// (fitMembers), nil until a move needs it; any change of the members
-	// or of a member's datum clears it. Copies of the state share it,
-	// read-only.
-	fit  *kernelProposal
 	size int
 	// reported and considered are the count totals A = sum n_j and
 	// A + B = sum L_j of the members; p is integrated out against them.
@@ -83,11 +78,6 @@ type State struct {
 	// its ratio (tests only; the zero value keeps every term).
 	sm   smScratch
 	drop ratioTerm
-	// noFitMemo makes the split-merge move refit every segment instead
-	// of reusing segment.fit, and keepStaleFits keeps a fit when a
-	// member's datum changes (tests only: the first must not change the
-	// chain, the second must be caught).
-	noFitMemo, keepStaleFits bool
 }
 
 // newState returns an empty state over data slots (all absent).
@@ -112,9 +102,6 @@ func (s *State) clone() *State {
 		prior:  s.prior,
 		m:      s.m,
 		drop:   s.drop,
-
-		noFitMemo:     s.noFitMemo,
-		keepStaleFits: s.keepStaleFits,
 	}
 	s.labels.refs.Add(1)
 	return c
@@ -165,7 +152,6 @@ func (s *State) join(i int, d *Datum, c uint16) {
 	g.size++
 	g.reported += d.N()
 	g.considered += d.L()
-	g.fit = nil
 	s.setLabel(i, c)
 }
 
@@ -178,7 +164,6 @@ func (s *State) leave(i int, d *Datum) (c uint16, emptied bool) {
 	g.size--
 	g.reported -= d.N()
 	g.considered -= d.L()
-	g.fit = nil
 	s.setLabel(i, Absent)
 	if g.size == 0 {
 		s.free = append(s.free, c)
@@ -321,9 +306,6 @@ func (s *State) swapDatum(i int, old, new *Datum) {
 	g := &s.segs[s.label(i)]
 	g.reported += new.N() - old.N()
 	g.considered += new.L() - old.L()
-	if !s.keepStaleFits {
-		g.fit = nil // the proposal was fitted to the old datum
-	}
 }
 
 // replacePredictives returns log Z(others, old) and log Z(others, new) for
