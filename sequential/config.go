@@ -82,13 +82,17 @@ type ParticleConfig struct {
 	// more the less the data changed (package doc).
 	MinChains int
 	// DiversityFloor is the share of P below which the number of distinct
-	// partitions in the population makes a settle run a waste-free step;
-	// in [0, 1], 0 turns the watch off.
+	// partitions in the population makes a settle of a small batch (single
+	// changes between refits) run a waste-free step; in [0, 1], 0 turns
+	// the watch off.
 	DiversityFloor float64
-	// RenewBelow makes a settle run a waste-free step once the changes
-	// since the last one have left an ESS share below it, the resamplings
-	// in between multiplied in (the population then descends from fewer
-	// than RenewBelow * P effective ancestors); in [0, 1], 0 turns it off.
+	// RenewBelow makes a settle of a small batch run a waste-free step
+	// once the changes since the last one have left an ESS share below
+	// it, the resamplings in between multiplied in (the population then
+	// descends from fewer than RenewBelow * P effective ancestors); in
+	// [0, 1], 0 turns it off. A settle of a large batch (a refit in
+	// progress) never renews: the refit's end does. It also sets where
+	// the waste-free step's burn-in begins (RefitBurn).
 	RenewBelow float64
 	// Workers is the number of goroutines over particles and chains; 0
 	// means GOMAXPROCS. Results do not depend on it.
@@ -101,9 +105,10 @@ type ParticleConfig struct {
 // a Replace keeps the assignments when its weights allow it at KeepESS
 // 0.5; half a split-merge proposal per MCMC step and recorded placement
 // probabilities; a first population from 16 batch chains of 150 burn-in
-// sweeps; waste-free steps of at least 16 chains; and a waste-free step
-// at a settle when the changes since the last one left an ESS share
-// below 0.05 or fewer than a quarter of the states are distinct.
+// sweeps; waste-free steps of at least 16 chains; and, between refits,
+// a waste-free step at a settle when the changes since the last one left
+// an ESS share below 0.05 or fewer than a quarter of the states are
+// distinct.
 func DefaultParticleConfig() ParticleConfig {
 	return ParticleConfig{Prior: DefaultPrior(), Aux: 3, Particles: 256, ESSFraction: 0.5,
 		Resampler: Systematic, Sweeps: 2, RandomShare: 0.1, KeepESS: 0.5, SplitMerge: 0.5, RaoBlackwell: true,

@@ -221,20 +221,24 @@
 //
 // Every resampling multiplies in the ESS share it absorbed (logMoved),
 // so exp(logMoved) * ESS/P measures how far the target has moved since
-// the last waste-free step. Settle renews the population (a waste-free
-// step) when that share falls below RenewBelow, or, after a small
-// micro-batch, when fewer than DiversityFloor * P of the particles are
-// distinct partitions (the diversity watch).
+// the last waste-free step. After a small micro-batch (single changes
+// between refits) Settle renews the population (a waste-free step) when
+// that share falls below RenewBelow or when fewer than DiversityFloor * P
+// of the particles are distinct partitions (the diversity watch). After
+// a large one (a refit in progress) it renews nothing, however far the
+// weights have fallen: the refit's end runs a waste-free step from the
+// weights the whole refit leaves, so a renewal inside the refit would be
+// paid for twice (it cost about 40% of a refit's MCMC when it ran).
 //
 // # Sequential updater: waste-free steps
 //
 // At a refit's end (SettleRefit), after a Remove whose weights collapse,
-// and whenever the diversity watch calls for it, the population is renewed
-// by a waste-free step (Dau and Chopin 2022): M of the P weighted
-// particles are resampled and each is run through a chain of about P/M
-// MCMC steps (split-merge, a scan of every product, every kernel, alpha);
-// every state the chains visit joins the new population with weight 1,
-// P states in all. The chains leave the current posterior invariant and
+// and whenever the diversity watch between refits calls for it, the
+// population is renewed by a waste-free step (Dau and Chopin 2022): M of
+// the P weighted particles are resampled and each is run through a chain
+// of about P/M MCMC steps (split-merge, a scan of every product, every
+// kernel, alpha); every state the chains visit joins the new population
+// with weight 1, P states in all. The chains leave the current posterior invariant and
 // start from a resampled weighted sample of it, so the visited states are
 // (correlated) draws from it, and none of the work is thrown away. M
 // follows how far the target moved since the last step: the ESS share

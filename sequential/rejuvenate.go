@@ -136,19 +136,23 @@ func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Ran
 // (and, after a resampling, a random share of the others), all moves
 // that leave the current posterior invariant, and clears the changed
 // set. Passes that would cost a full sweep per particle or more are
-// skipped: a waste-free step costs that and moves everything. Then the diversity watch: when fewer than DiversityFloor * P of
-// the states are distinct partitions, it runs a waste-free step. It
-// reports whether it resampled. Before the first build it does nothing.
+// skipped: a waste-free step costs that and moves everything. After a
+// small batch (single changes between refits) the population is then
+// watched: when the changes since the last waste-free step have left an
+// ESS share below RenewBelow, or fewer than DiversityFloor * P of the
+// states are distinct partitions, it runs a waste-free step. After a
+// large batch (a refit in progress) it renews nothing: copies are
+// expected, and the refit's end (SettleRefit) runs a waste-free step
+// that starts from the weights as the whole refit left them, so a
+// renewal in between would only be paid for twice. It reports whether
+// it resampled or renewed. Before the first build it does nothing.
 func (ps *Particles) Settle() bool {
 	if !ps.built {
 		return false
 	}
 	large := float64(ps.cfg.Sweeps*len(ps.touched)) >= float64(ps.n)
 	resampled := ps.settle(ps.cfg.Sweeps)
-	// After a large batch (a refit in progress) copies are expected and
-	// the refit end will renew them, so only a used-up population is
-	// renewed now; after a small one the distinct states are counted too.
-	if ps.n >= 2 && (ps.movedShare() < ps.cfg.RenewBelow || !large &&
+	if ps.n >= 2 && !large && (ps.movedShare() < ps.cfg.RenewBelow ||
 		ps.cfg.DiversityFloor > 0 && float64(ps.DistinctStates()) < ps.cfg.DiversityFloor*float64(len(ps.parts))) {
 		ps.wasteFree()
 		return true
