@@ -67,12 +67,34 @@ type Config struct {
 	// for a split to be reported, and that each of two previous segments
 	// must send to one new segment for a merge.
 	SplitShare float64
+
+	// Rule picks the move rule: RuleBand (the membership band above) or
+	// RuleFilter (the switch filter, filter.go). The settings below are
+	// the filter's; the band rule ignores them.
+	Rule MoveRule
+	// SwitchRate, eps in (0, 0.5], is the filter's prior probability
+	// that a product changes segment between two refits. Default rule:
+	// the share of products expected to change segment per refit; 0.01
+	// (one product in a hundred per refit) unless the category's history
+	// says otherwise.
+	SwitchRate float64
+	// Temper, gamma in (0, 1], is the power the filter raises each
+	// refit's predictive density to. 1 treats successive refits as
+	// independent evidence; a refit re-estimated on mostly the same
+	// weeks of sales repeats much of the last one's evidence, and
+	// counting it in full would make the filter confident too soon.
+	Temper float64
+	// MoveProb, in (0.5, 1), is the filter's probability that a product
+	// has left its reported segment at or above which it is moved.
+	MoveProb float64
 }
 
 // DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
-// 0.25, AlertProb 0.5, RealertMargin 0.1 and SplitShare 0.3.
+// 0.25, AlertProb 0.5, RealertMargin 0.1, SplitShare 0.3, the band rule,
+// and for the filter SwitchRate 0.01, Temper 0.5 and MoveProb 0.9.
 func DefaultConfig() Config {
-	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3}
+	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3,
+		Rule: RuleBand, SwitchRate: 0.01, Temper: 0.5, MoveProb: 0.9}
 }
 
 // Validate reports the first setting out of range; errors wrap ErrConfig
@@ -93,6 +115,14 @@ func (c Config) Validate() error {
 		return fmt.Errorf("%w: realert_margin %v, want in (0, 1)", ErrConfig, c.RealertMargin)
 	case !(c.SplitShare > 0 && c.SplitShare <= 0.5):
 		return fmt.Errorf("%w: split_share %v, want in (0, 0.5]", ErrConfig, c.SplitShare)
+	case c.Rule != RuleBand && c.Rule != RuleFilter:
+		return fmt.Errorf("%w: move_rule %q, want band or filter", ErrConfig, c.Rule)
+	case !(c.SwitchRate > 0 && c.SwitchRate <= 0.5):
+		return fmt.Errorf("%w: switch_rate %v, want in (0, 0.5]", ErrConfig, c.SwitchRate)
+	case !(c.Temper > 0 && c.Temper <= 1):
+		return fmt.Errorf("%w: temper %v, want in (0, 1]", ErrConfig, c.Temper)
+	case !(c.MoveProb > 0.5 && c.MoveProb < 1):
+		return fmt.Errorf("%w: move_prob %v, want in (0.5, 1)", ErrConfig, c.MoveProb)
 	}
 	return nil
 }

@@ -35,6 +35,11 @@ type Refit struct {
 	// MeanSurprise is the mean negative log predictive density (nats)
 	// of the data the refit added or replaced; NaN when it changed none.
 	MeanSurprise float64
+	// Emission[i][c] is the log posterior predictive density of Data[i]
+	// as a member of point segment c of Summary
+	// (sequential.SegmentLogPredictive over the same draws). The filter
+	// rule needs it; the band rule ignores it.
+	Emission [][]float64
 }
 
 // Outcome is the result of Evaluate.
@@ -114,6 +119,13 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		Provisional: make([]bool, n),
 		SegmentIDs:  lab.ids,
 	}
+	sizes := make([]int, k)
+	for _, c := range sum.Partition {
+		sizes[c]++
+	}
+	if cfg.Rule == RuleFilter {
+		out.Memory.Filter = make(map[string]map[string]float64, n)
+	}
 	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: n, Segments: k,
 		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: Float(r.MeanSurprise)}
 	emit := func(kind Kind, subject string, data any) {
@@ -164,7 +176,25 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		}
 		crossed := in >= cfg.MoveIn && outOf <= cfg.MoveOut
 		held, young := prev.Provisional[p]
+		if cfg.Rule == RuleFilter {
+			var pLeft float64
+			var post []float64
+			rep, held, young, pLeft, post = filterDecide(cfg, prev, p, known, old, held, young, &lab, sizes, r.Emission[i])
+			fm := make(map[string]float64, k)
+			for b, v := range post {
+				fm[lab.ids[b]] = v
+			}
+			out.Memory.Filter[p] = fm
+			if known && !young && rep != old {
+				prob := pLeft
+				to := lab.live[rep]
+				rs.Moves++
+				emit(KindMoved, p, Moved{Category: r.Category, Refit: r.Refit, Product: p, From: old, To: rep,
+					FromMembership: outOf, ToMembership: sum.Membership[i][to], FromRetired: retired, Probability: &prob})
+			}
+		}
 		switch {
+		case cfg.Rule == RuleFilter:
 		case !known:
 			// A new product takes its point segment, provisionally.
 			held, young = 1, true
@@ -308,6 +338,49 @@ func definedPrefix(x []float64) []float64 {
 	return out
 }
 
+// filterDecide runs the switch filter for product p and applies the move
+// rule: it returns the reported label, the provisional count and flag,
+// the probability that p has left its reported segment old, and the
+// filter's new state over the point segments.
+//
+// A new product is provisional, as under the band rule, and its label
+// follows the filter's most probable segment without events until it has
+// stood unchanged for Confirm refits. An established product moves when
+// the probability that it has left its reported segment reaches
+// MoveProb (at once when the segment retired): to the most probable
+// other segment.
+func filterDecide(cfg Config, prev Memory, p string, known bool, old string, held int, young bool,
+	lab *labelling, sizes []int, logEm []float64) (rep string, heldOut int, youngOut bool, pLeft float64, post []float64) {
+	var st map[string]float64
+	if known {
+		st = prev.Filter[p]
+	}
+	if known || st != nil {
+		post = filterStep(cfg, st, old, lab, sizes, logEm)
+	} else {
+		post = filterInit(sizes, logEm, cfg.Temper)
+	}
+	best := argmax(post, -1)
+	switch {
+	case !known:
+		return lab.ids[best], 1, true, 0, post
+	case young:
+		if lab.ids[best] != old {
+			return lab.ids[best], 1, true, 0, post
+		}
+		return old, held + 1, true, 0, post
+	}
+	oc, live := lab.live[old]
+	if !live {
+		return lab.ids[best], held, false, 1, post
+	}
+	pLeft = min(max(1-post[oc], 0), 1)
+	if pLeft >= cfg.MoveProb {
+		return lab.ids[argmax(post, oc)], held, false, pLeft, post
+	}
+	return old, held, false, pLeft, post
+}
+
 // validate checks that the refit's fields agree with each other and with
 // cfg; errors wrap ErrRefit and name the field.
 func (r *Refit) validate(cfg Config) error {
@@ -378,6 +451,26 @@ func (r *Refit) validate(cfg Config) error {
 		for _, q := range []float64{nx.Median, nx.Lo, nx.Hi} {
 			if math.IsNaN(q) || math.IsInf(q, 0) || q < 0 {
 				return fmt.Errorf("%w: summary.next[%d] quantiles %v, %v, %v, want finite and >= 0", ErrRefit, i, nx.Lo, nx.Median, nx.Hi)
+			}
+		}
+	}
+	if cfg.Rule == RuleFilter {
+		if len(r.Emission) != n {
+			return fmt.Errorf("%w: emission has %d entries for %d products (the filter rule needs it)", ErrRefit, len(r.Emission), n)
+		}
+		for i, row := range r.Emission {
+			if len(row) != k {
+				return fmt.Errorf("%w: emission[%d] has %d entries for %d segments", ErrRefit, i, len(row), k)
+			}
+			finiteOne := false
+			for c, v := range row {
+				if math.IsNaN(v) || math.IsInf(v, 1) {
+					return fmt.Errorf("%w: emission[%d][%d] = %v, want a log density below +Inf", ErrRefit, i, c, v)
+				}
+				finiteOne = finiteOne || !math.IsInf(v, -1)
+			}
+			if !finiteOne {
+				return fmt.Errorf("%w: emission[%d] is -Inf for every segment", ErrRefit, i)
 			}
 		}
 	}

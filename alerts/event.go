@@ -113,6 +113,10 @@ type Moved struct {
 	ToMembership   float64 `json:"to_membership"`
 	// FromRetired is true when From no longer exists.
 	FromRetired bool `json:"from_retired,omitempty"`
+	// Probability, under the filter rule (Config.Rule), is the filter's
+	// probability that the product has left From, in [MoveProb, 1];
+	// absent under the band rule.
+	Probability *float64 `json:"probability,omitempty"`
 }
 
 // Born is the body of a born event: a point segment that matched no

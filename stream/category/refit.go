@@ -48,9 +48,14 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	if w.surpriseN > 0 {
 		rep.MeanSurprise = w.surpriseSum / float64(w.surpriseN)
 	}
+	em, err := w.emission(data, sum)
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
+	}
 	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
 		Category: w.category, Refit: refit, Products: rep.Products, Data: data, Summary: sum,
 		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity, MeanSurprise: rep.MeanSurprise,
+		Emission: em,
 	})
 	if err != nil {
 		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
@@ -86,9 +91,13 @@ func (w *Worker) Current() (RefitReport, error) {
 	rep.Distinct = w.ps.DistinctStates()
 	// Evaluating the last refit again against the memory it produced
 	// gives the labels it reported; the outcome's memory is discarded.
+	em, err := w.emission(data, sum)
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
 	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
 		Category: w.category, Refit: w.lastRefit, Products: rep.Products, Data: data, Summary: sum,
-		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity,
+		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity, Emission: em,
 	})
 	if err != nil {
 		return rep, fmt.Errorf("category %s: %w", w.category, err)
@@ -96,4 +105,13 @@ func (w *Worker) Current() (RefitReport, error) {
 	rep.Alerts = out
 	rep.Labels = out.Labels
 	return rep, nil
+}
+
+// emission returns the per-segment log predictive densities the filter
+// rule needs (nil under the band rule, which does not read them).
+func (w *Worker) emission(data []*sequential.Datum, sum sequential.Summary) ([][]float64, error) {
+	if w.cfg.Alerts.Rule != alerts.RuleFilter {
+		return nil, nil
+	}
+	return sequential.SegmentLogPredictive(w.ps.Draws(), data, sum.Partition, len(sum.Segments), w.cfg.Summary.Prior)
 }
