@@ -74,27 +74,33 @@ type Config struct {
 	Rule MoveRule
 	// SwitchRate, eps in (0, 0.5], is the filter's prior probability
 	// that a product changes segment between two refits. Default rule:
-	// the share of products expected to change segment per refit; 0.01
-	// (one product in a hundred per refit) unless the category's history
-	// says otherwise.
+	// the share of products expected to change segment per refit, e.g.
+	// 10% of a category over 8 weekly refits is 0.1 / 7 = 0.014; the
+	// default 0.01 is one product in a hundred per refit.
 	SwitchRate float64
 	// Temper, gamma in (0, 1], is the power the filter raises each
-	// refit's predictive density to. 1 treats successive refits as
-	// independent evidence; a refit re-estimated on mostly the same
-	// weeks of sales repeats much of the last one's evidence, and
-	// counting it in full would make the filter confident too soon.
+	// refit's predictive density to. A refit re-estimated on mostly the
+	// same weeks of sales as the last repeats much of its evidence, and
+	// gamma < 1 discounts it. The default is 1: on simulated refits that
+	// re-estimate the same values (alerts/backtest_test.go) a smaller
+	// gamma only delayed the detection of real moves without removing
+	// false ones, because the false ones come from the segmentation, not
+	// from evidence counted twice. Lower it where refits share most of
+	// their data and the backtest of the category shows repeated false
+	// moves.
 	Temper float64
-	// MoveProb, in (0.5, 1), is the filter's probability that a product
-	// has left its reported segment at or above which it is moved.
+	// MoveProb, in (0.5, 1), is the filter's probability at or above
+	// which a product is moved: that it has switched since its label was
+	// set, or (a relabel) that it is not in its labelled segment.
 	MoveProb float64
 }
 
 // DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
 // 0.25, AlertProb 0.5, RealertMargin 0.1, SplitShare 0.3, the band rule,
-// and for the filter SwitchRate 0.01, Temper 0.5 and MoveProb 0.9.
+// and for the filter SwitchRate 0.01, Temper 1 and MoveProb 0.8.
 func DefaultConfig() Config {
 	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3,
-		Rule: RuleBand, SwitchRate: 0.01, Temper: 0.5, MoveProb: 0.9}
+		Rule: RuleBand, SwitchRate: 0.01, Temper: 1, MoveProb: 0.8}
 }
 
 // Validate reports the first setting out of range; errors wrap ErrConfig

@@ -124,7 +124,7 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		sizes[c]++
 	}
 	if cfg.Rule == RuleFilter {
-		out.Memory.Filter = make(map[string]map[string]float64, n)
+		out.Memory.Filter = make(map[string]map[string][2]float64, n)
 	}
 	rs := RefitSummary{Category: r.Category, Refit: r.Refit, Products: n, Segments: k,
 		ESS: r.ESS, Particles: r.Particles, Diversity: r.Diversity, MeanSurprise: Float(r.MeanSurprise)}
@@ -177,20 +177,20 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 		crossed := in >= cfg.MoveIn && outOf <= cfg.MoveOut
 		held, young := prev.Provisional[p]
 		if cfg.Rule == RuleFilter {
-			var pLeft float64
-			var post []float64
-			rep, held, young, pLeft, post = filterDecide(cfg, prev, p, known, old, held, young, &lab, sizes, r.Emission[i])
-			fm := make(map[string]float64, k)
-			for b, v := range post {
-				fm[lab.ids[b]] = v
+			var fd filterDecision
+			fd, held, young = filterDecide(cfg, prev, p, known, old, held, young, &lab, sizes, r.Emission[i])
+			rep = lab.ids[fd.label]
+			fm := make(map[string][2]float64, k)
+			for b := 0; b < k; b++ {
+				fm[lab.ids[b]] = [2]float64{fd.state[b], fd.state[k+b]}
 			}
 			out.Memory.Filter[p] = fm
-			if known && !young && rep != old {
-				prob := pLeft
-				to := lab.live[rep]
+			if fd.event {
+				prob := fd.moved
 				rs.Moves++
 				emit(KindMoved, p, Moved{Category: r.Category, Refit: r.Refit, Product: p, From: old, To: rep,
-					FromMembership: outOf, ToMembership: sum.Membership[i][to], FromRetired: retired, Probability: &prob})
+					FromMembership: outOf, ToMembership: sum.Membership[i][fd.label], FromRetired: retired,
+					Probability: &prob, Relabel: fd.relabel})
 			}
 		}
 		switch {
@@ -338,47 +338,70 @@ func definedPrefix(x []float64) []float64 {
 	return out
 }
 
+// filterDecision is the outcome of the filter rule for one product.
+type filterDecision struct {
+	label   int     // point segment index of the reported label
+	state   fstate  // the filter's state to keep
+	event   bool    // a moved event is due
+	moved   float64 // P(switched since the label was set), before the decision
+	relabel bool    // the event corrects the label rather than report a switch
+}
+
 // filterDecide runs the switch filter for product p and applies the move
-// rule: it returns the reported label, the provisional count and flag,
-// the probability that p has left its reported segment old, and the
-// filter's new state over the point segments.
+// rule; it returns the decision and the provisional count and flag.
 //
-// A new product is provisional, as under the band rule, and its label
-// follows the filter's most probable segment without events until it has
-// stood unchanged for Confirm refits. An established product moves when
-// the probability that it has left its reported segment reaches
-// MoveProb (at once when the segment retired): to the most probable
-// other segment.
+// A new product is provisional, as under the band rule: its label
+// follows the filter's most probable segment without events (the switch
+// flag cleared at every refit) until it has stood unchanged for Confirm
+// refits. An established product moves, with a moved event:
+//   - when P(switched since its label was set) reaches MoveProb, to the
+//     most probable other segment;
+//   - at once when its labelled segment retired (probability 1);
+//   - when, without a likely switch, the probability that it is in its
+//     labelled segment falls to 1 - MoveProb or below: the label was
+//     wrong when it was set (it was set on an uncertain state), and is
+//     corrected with an event marked relabel.
+//
+// After a move the switch flag is cleared: the new label is the one
+// later switches are measured from.
 func filterDecide(cfg Config, prev Memory, p string, known bool, old string, held int, young bool,
-	lab *labelling, sizes []int, logEm []float64) (rep string, heldOut int, youngOut bool, pLeft float64, post []float64) {
-	var st map[string]float64
+	lab *labelling, sizes []int, logEm []float64) (filterDecision, int, bool) {
+	var st fstate
 	if known {
-		st = prev.Filter[p]
-	}
-	if known || st != nil {
-		post = filterStep(cfg, st, old, lab, sizes, logEm)
+		st = filterStep(cfg, prev.Filter[p], old, lab, sizes, logEm)
 	} else {
-		post = filterInit(sizes, logEm, cfg.Temper)
+		st = filterInit(sizes, logEm, cfg.Temper)
 	}
-	best := argmax(post, -1)
+	d := filterDecision{state: st, moved: st.moved()}
+	best := argmaxMarginal(st, -1)
 	switch {
 	case !known:
-		return lab.ids[best], 1, true, 0, post
+		d.label = best
+		st.clearFlag()
+		return d, 1, true
 	case young:
+		st.clearFlag()
 		if lab.ids[best] != old {
-			return lab.ids[best], 1, true, 0, post
+			d.label = best
+			return d, 1, true
 		}
-		return old, held + 1, true, 0, post
+		d.label = lab.live[old]
+		return d, held + 1, true
 	}
 	oc, live := lab.live[old]
-	if !live {
-		return lab.ids[best], held, false, 1, post
+	switch {
+	case !live:
+		d.label, d.event, d.moved = best, true, 1
+	case d.moved >= cfg.MoveProb:
+		d.label, d.event = argmaxMarginal(st, oc), true
+	case st.marginal(oc) <= 1-cfg.MoveProb:
+		d.label, d.event, d.relabel = argmaxMarginal(st, oc), true, true
+	default:
+		d.label = oc
+		return d, held, false
 	}
-	pLeft = min(max(1-post[oc], 0), 1)
-	if pLeft >= cfg.MoveProb {
-		return lab.ids[argmax(post, oc)], held, false, pLeft, post
-	}
-	return old, held, false, pLeft, post
+	st.clearFlag()
+	return d, held, false
 }
 
 // validate checks that the refit's fields agree with each other and with

@@ -42,11 +42,13 @@ type Memory struct {
 	// a missed or cleared event.
 	Alert map[string]AlertMemory `json:"alert"`
 	// Filter holds the switch filter's state of each product present at
-	// the last refit evaluated with Config.Rule = RuleFilter: the
-	// probability of each live segment id, summing to 1. Absent under the
-	// band rule; a memory written without it (an older version, or the
-	// band rule) starts each product's filter from its reported segment.
-	Filter map[string]map[string]float64 `json:"filter,omitempty"`
+	// the last refit evaluated with Config.Rule = RuleFilter: for each
+	// live segment id, [P(in it, no switch since the label was set),
+	// P(in it, switched since)], summing to 1 over the ids (filter.go).
+	// Absent under the band rule; a memory written without it (an older
+	// version, or the band rule) starts each product's filter from its
+	// reported segment.
+	Filter map[string]map[string][2]float64 `json:"filter,omitempty"`
 }
 
 // PendingMove is a move that has met its conditions at Count (>= 1)
@@ -122,10 +124,12 @@ func (m Memory) Validate() error {
 			if k, ok := parseSegmentID(id); !ok || k > m.Issued {
 				return fmt.Errorf("%w: filter[%q] names segment %q, want S1..S%d", ErrMemory, p, id, m.Issued)
 			}
-			if !(v >= 0 && v <= 1) {
-				return fmt.Errorf("%w: filter[%q][%q] = %v, want in [0, 1]", ErrMemory, p, id, v)
+			for _, x := range v {
+				if !(x >= 0 && x <= 1) {
+					return fmt.Errorf("%w: filter[%q][%q] = %v, want probabilities in [0, 1]", ErrMemory, p, id, v)
+				}
+				sum += x
 			}
-			sum += v
 		}
 		if math.Abs(sum-1) > 1e-6 {
 			return fmt.Errorf("%w: filter[%q] sums to %v, want 1", ErrMemory, p, sum)
