@@ -93,6 +93,31 @@ type Config struct {
 	// which a product is moved: that it has switched since its label was
 	// set, or (a relabel) that it is not in its labelled segment.
 	MoveProb float64
+
+	// AlertBudget >= 0 caps the number of missed-competitor alerts in
+	// force per refit: the top AlertBudget by expected excess over the
+	// threshold; 0 sets no cap.
+	AlertBudget int
+	// AlertShare, in [0, 1], caps the alerts in force at that share of
+	// the category's products (rounded up); 0 sets no cap. With both
+	// caps set the smaller applies. Neither changes which products meet
+	// the threshold rule, only how many of them are alerted.
+	AlertShare float64
+}
+
+// alertLimit returns the alert cap for n products, -1 for none.
+func (c Config) alertLimit(n int) int {
+	limit := -1
+	if c.AlertBudget > 0 {
+		limit = c.AlertBudget
+	}
+	if c.AlertShare > 0 {
+		s := int(math.Ceil(c.AlertShare * float64(n)))
+		if limit < 0 || s < limit {
+			limit = s
+		}
+	}
+	return limit
 }
 
 // DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
@@ -129,6 +154,10 @@ func (c Config) Validate() error {
 		return fmt.Errorf("%w: temper %v, want in (0, 1]", ErrConfig, c.Temper)
 	case !(c.MoveProb > 0.5 && c.MoveProb < 1):
 		return fmt.Errorf("%w: move_prob %v, want in (0.5, 1)", ErrConfig, c.MoveProb)
+	case c.AlertBudget < 0:
+		return fmt.Errorf("%w: alert_budget %d, want >= 0 (0: no cap)", ErrConfig, c.AlertBudget)
+	case !(c.AlertShare >= 0 && c.AlertShare <= 1):
+		return fmt.Errorf("%w: alert_share %v, want in [0, 1] (0: no cap)", ErrConfig, c.AlertShare)
 	}
 	return nil
 }

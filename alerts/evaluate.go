@@ -61,6 +61,92 @@ type Outcome struct {
 	SegmentIDs []string
 	// Summary is the body of the summary event.
 	Summary RefitSummary
+	// Watchlist is the week's missed-competitor list: every product with
+	// an alert in force after this refit, by rank (status new or still),
+	// then the products cleared at this refit, by id.
+	Watchlist []WatchItem
+}
+
+// Status of a product on the missed-competitor watchlist.
+const (
+	StatusNew     = "new"     // alerted at this refit, not in force before
+	StatusStill   = "still"   // in force before and after this refit
+	StatusCleared = "cleared" // in force before, cleared at this refit
+)
+
+// WatchItem is one line of Outcome.Watchlist.
+type WatchItem struct {
+	Product string `json:"product"`
+	Segment string `json:"segment"`
+	// Rank, from 1, orders the alerts in force by Excess, highest first
+	// (ties by probability, then product id); 0 for a cleared product.
+	Rank int `json:"rank,omitempty"`
+	// Probability is P(next value > Config.Threshold) at this refit and
+	// Excess E[(next value - Threshold)+] (sequential.NextSummary).
+	Probability float64 `json:"probability"`
+	Excess      float64 `json:"excess"`
+	Status      string  `json:"status"`
+}
+
+// alertPlan is the missed-competitor decision for one product.
+type alertPlan struct {
+	ev         Kind        // event to emit, "" for none
+	next       AlertMemory // memory to keep
+	changed    bool        // an event changed the memory
+	rank       int         // rank among the alerts in force after the refit; 0 for none
+	overBudget bool        // cleared because the budget left it out
+}
+
+// planAlerts applies the missed-competitor rule (missedRule, unchanged
+// by the budget) to every product, ranks the products whose alert is in
+// force after the refit by the expected excess of their next value over
+// the threshold (E[(Y - t)+], highest first; ties by probability, then
+// product id) and, with a budget (Config.AlertBudget, AlertShare), keeps
+// only the top ones: a new alert beyond the budget is not raised, and an
+// alert in force beyond it is cleared (Cleared.OverBudget).
+func planAlerts(cfg Config, prev Memory, r Refit) []alertPlan {
+	n := len(r.Products)
+	plans := make([]alertPlan, n)
+	var active []int
+	for i, p := range r.Products {
+		am, had := prev.Alert[p]
+		ev, next, changed := missedRule(cfg, am, had, r.Summary.Next[i])
+		plans[i] = alertPlan{ev: ev, next: next, changed: changed}
+		if next.Active {
+			active = append(active, i)
+		}
+	}
+	nx := r.Summary.Next
+	slices.SortFunc(active, func(a, b int) int {
+		switch {
+		case nx[a].Excess != nx[b].Excess:
+			if nx[a].Excess > nx[b].Excess {
+				return -1
+			}
+			return 1
+		case nx[a].PExceed != nx[b].PExceed:
+			if nx[a].PExceed > nx[b].PExceed {
+				return -1
+			}
+			return 1
+		}
+		return strings.Compare(r.Products[a], r.Products[b])
+	})
+	limit := cfg.alertLimit(n)
+	for k, i := range active {
+		if limit >= 0 && k >= limit {
+			am, had := prev.Alert[r.Products[i]]
+			if had && am.Active {
+				plans[i] = alertPlan{ev: KindCleared, next: AlertMemory{Active: false, Probability: nx[i].PExceed},
+					changed: true, overBudget: true}
+			} else {
+				plans[i] = alertPlan{next: am}
+			}
+			continue
+		}
+		plans[i].rank = k + 1
+	}
+	return plans
 }
 
 // Evaluate runs the alert rules of one refit against the memory of the
@@ -157,6 +243,10 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 	rs.Births, rs.Retirements = len(lab.born), len(lab.retired)
 	rs.Splits, rs.Merges = len(lab.splits), len(lab.merges)
 
+	// Missed-competitor decisions first: the budget ranks every product.
+	plans := planAlerts(cfg, prev, r)
+	var watch []WatchItem
+
 	// Product events, in product id order.
 	order := make([]int, len(r.Products))
 	for i := range order {
@@ -243,34 +333,55 @@ func Evaluate(cfg Config, prev Memory, r Refit) (Outcome, error) {
 			segIdx = oc
 		}
 		am, had := prev.Alert[p]
-		ev, next, changed := missedRule(cfg, am, had, sum.Next[i])
+		pl := plans[i]
+		ev, next, changed := pl.ev, pl.next, pl.changed
 		if changed {
 			next.Refit = r.Refit
 		}
+		wasActive := had && am.Active
 		switch ev {
 		case KindMissed:
 			body := Missed{Category: r.Category, Refit: r.Refit, Product: p, Segment: rep, Threshold: cfg.Threshold,
 				Probability: sum.Next[i].PExceed, Median: sum.Next[i].Median, Lo: sum.Next[i].Lo, Hi: sum.Next[i].Hi,
 				Reported: slices.Clone(r.Data[i].Values()), Competitors: r.Data[i].L(),
-				TypicalReported: sum.Segments[segIdx].MeanReported}
-			if had && am.Active {
+				TypicalReported: sum.Segments[segIdx].MeanReported, Excess: sum.Next[i].Excess, Rank: pl.rank, Status: StatusNew}
+			if wasActive {
 				body.Previous = &am.Probability
+				body.Status = StatusStill
 			}
 			rs.Alerts++
 			emit(KindMissed, p, body)
 		case KindCleared:
 			body := Cleared{Category: r.Category, Refit: r.Refit, Product: p, Segment: rep, Threshold: cfg.Threshold,
-				Probability: next.Probability, Alerted: am.Probability, NoNextValue: !sum.Next[i].Defined}
+				Probability: next.Probability, Alerted: am.Probability, NoNextValue: !sum.Next[i].Defined, OverBudget: pl.overBudget}
 			rs.Clears++
 			emit(KindCleared, p, body)
+			watch = append(watch, WatchItem{Product: p, Segment: rep, Probability: sum.Next[i].PExceed, Excess: sum.Next[i].Excess, Status: StatusCleared})
 		}
 		if had || changed {
 			out.Memory.Alert[p] = next
 		}
 		if next.Active {
 			rs.ActiveAlerts++
+			st := StatusNew
+			if wasActive {
+				st = StatusStill
+			}
+			watch = append(watch, WatchItem{Product: p, Segment: rep, Rank: pl.rank, Probability: sum.Next[i].PExceed, Excess: sum.Next[i].Excess, Status: st})
 		}
 	}
+	slices.SortStableFunc(watch, func(a, b WatchItem) int {
+		switch {
+		case a.Rank > 0 && b.Rank > 0:
+			return a.Rank - b.Rank
+		case a.Rank > 0:
+			return -1
+		case b.Rank > 0:
+			return 1
+		}
+		return strings.Compare(a.Product, b.Product)
+	})
+	out.Watchlist = watch
 	rs.ARI = previousARI(prev.Point, r.Products, out.Point)
 	out.Summary = rs
 	emit(KindSummary, r.Category, rs)
@@ -467,6 +578,9 @@ func (r *Refit) validate(cfg Config) error {
 		}
 		if math.Abs(nx.Threshold-cfg.Threshold) > tol {
 			return fmt.Errorf("%w: summary.next[%d].threshold %v, config threshold %v", ErrRefit, i, nx.Threshold, cfg.Threshold)
+		}
+		if !(nx.Excess >= 0) || math.IsInf(nx.Excess, 1) {
+			return fmt.Errorf("%w: summary.next[%d].excess = %v, want finite and >= 0", ErrRefit, i, nx.Excess)
 		}
 		if !(nx.PExceed >= 0 && nx.PExceed <= 1) {
 			return fmt.Errorf("%w: summary.next[%d].pexceed = %v, want in [0, 1]", ErrRefit, i, nx.PExceed)

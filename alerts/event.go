@@ -211,6 +211,15 @@ type Missed struct {
 	// repeat because the probability rose by RealertMargin; absent for a
 	// first alert.
 	Previous *float64 `json:"previous,omitempty"`
+	// Excess is E[(next value - Threshold)+], the expected amount by
+	// which the next value exceeds the threshold: what the alerts are
+	// ranked by.
+	Excess float64 `json:"excess"`
+	// Rank, from 1, is the product's place among the category's alerts
+	// in force after this refit, by Excess (Outcome.Watchlist).
+	Rank int `json:"rank"`
+	// Status is "new" for a first alert and "still" for a repeat.
+	Status string `json:"status"`
 }
 
 // Cleared is the body of a cleared event: an alerted product's
@@ -228,6 +237,9 @@ type Cleared struct {
 	Alerted float64 `json:"alerted"`
 	// NoNextValue is true when the product reported every candidate.
 	NoNextValue bool `json:"no_next_value,omitempty"`
+	// OverBudget is true when the alert still meets the threshold rule
+	// but fell outside the category's alert budget.
+	OverBudget bool `json:"over_budget,omitempty"`
 }
 
 // RefitSummary is the body of the summary event, one per refit.

@@ -111,6 +111,10 @@ type NextSummary struct {
 	Threshold float64
 	// PExceed is P(Y_(n+1) > Threshold), in [0, 1].
 	PExceed float64
+	// Excess is E[(Y_(n+1) - Threshold)+] >= 0, the expected amount by
+	// which the next value exceeds the threshold (relative
+	// cross-elasticity; MixedNext.ExpectedExcess); 0 when undefined.
+	Excess float64
 	// Median, Lo and Hi are the 0.5, QuantileLo and QuantileHi quantiles
 	// of Y_(n+1) (relative cross-elasticity, in (0, y_n] when n >= 1),
 	// found to 1e-9 relative accuracy.
@@ -405,6 +409,7 @@ func nextSummaries(draws []Draw, w []float64, data []*Datum, opt SummaryOptions)
 				ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
 			} else {
 				ns.PExceed = mix.Exceed(opt.Threshold)
+				ns.Excess = mix.ExpectedExcess(opt.Threshold)
 				ns.Median = mix.Quantile(0.5)
 				ns.Lo = mix.Quantile(opt.QuantileLo)
 				ns.Hi = mix.Quantile(opt.QuantileHi)
@@ -586,4 +591,18 @@ func (m MixedNext) cdfSlope(x, lx float64) (cdf, slope float64) {
 		slope += w * f * nv.power * dlogG
 	}
 	return min(cdf/m.wsum, 1), slope / m.wsum
+}
+
+// ExpectedExcess returns E[(Y_(n+1) - t)+] under the mixture: the
+// weighted mean of each draw's NextValue.ExpectedExcess (the expectation
+// of a mixture is the mixture of expectations).
+func (m MixedNext) ExpectedExcess(t float64) float64 {
+	if !m.Defined() {
+		return math.NaN()
+	}
+	var s float64
+	for k, nv := range m.laws {
+		s += m.w[k] * nv.ExpectedExcess(t)
+	}
+	return s / m.wsum
 }
