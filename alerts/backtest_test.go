@@ -37,7 +37,6 @@ type btScore struct {
 	right, wrong         int     // moves in the window: to the switcher's new segment, or not
 	switched, detected   int     // switchers visible in id space, and those with a right move in the window
 	switchedAll          int     // every switcher
-	relabels             int     // moved events marked relabel (filter rule)
 	falseMoves, products int     // moves outside the window that are not a late right one, and products, over the non-window refits after the first
 	maxFalse             float64 // largest false-move share of one refit
 	delaySum             float64 // refits from the switch to the first right move, over switchers detected at any refit
@@ -111,9 +110,6 @@ func (b *btScore) add(runs []simRefit, switchAt, nseg int, pMoved func(r, i int,
 		for _, e := range byKind(sr.out.Events, KindMoved) {
 			m := e.Data.(Moved)
 			movedNow[m.Product] = true
-			if m.Relabel {
-				b.relabels++
-			}
 			i := sr.index[m.Product]
 			toNew := sr.switched[i] && r >= switchAt && m.To == maj[sr.truth[i]]
 			if toNew {
@@ -236,8 +232,8 @@ const (
 )
 
 func btRow(rule string, s *btScore) string {
-	return fmt.Sprintf("  %-22s  precision %.3f (%d/%d)  recall %.3f (%d/%d visible of %d)  false/refit %.4f (max %.4f)  delay %.2f  Brier %.4f  relabels %d",
-		rule, s.precision(), s.right, s.right+s.wrong, s.recall(), s.detected, s.switched, s.switchedAll, s.falseRate(), s.maxFalse, s.delay(), s.brier(), s.relabels)
+	return fmt.Sprintf("  %-22s  precision %.3f (%d/%d)  recall %.3f (%d/%d visible of %d)  false/refit %.4f (max %.4f)  delay %.2f  Brier %.4f",
+		rule, s.precision(), s.right, s.right+s.wrong, s.recall(), s.detected, s.switched, s.switchedAll, s.falseRate(), s.maxFalse, s.delay(), s.brier())
 }
 
 // TestBacktestMoveRules runs both move rules side by side on the same
@@ -259,7 +255,8 @@ func btRow(rule string, s *btScore) string {
 //	go test -run TestBacktestMoveRules -backtest -v ./alerts/
 //
 // and asserts the targets on separated segments (precision >= 0.95,
-// recall >= 0.9, calibration) for the filter with the rule's SwitchRate;
+// recall >= 0.9, false moves <= 0.5% per refit) for the filter with the
+// rule's SwitchRate (calibration: TestFilterCalibrationHazard);
 // on overlapping segments it logs the scores (see README: the filter does
 // not beat the band rule there, and the band rule stays the default).
 // Without the flag (CI) one seed of separated segments with independent
@@ -291,8 +288,13 @@ func TestBacktestMoveRules(t *testing.T) {
 			continue
 		}
 		f := &filt[1]
+		// Calibration is checked in TestFilterCalibrationHazard, where the
+		// filter's constant switch rate holds. Here every switch is planted
+		// at one refit, where the rate is 10%, not 1.4%: at that refit the
+		// filter's P(switched) is too low for the switchers it has not yet
+		// moved, which the table shows.
 		for _, msg := range bad {
-			t.Errorf("%s: filter calibration: %s", c.name, msg)
+			t.Logf("%s: filter calibration under planted switches: %s", c.name, msg)
 		}
 		if f.precision() < 0.95 || f.recall() < 0.9 || f.falseRate() > 0.005 {
 			t.Errorf("%s: filter precision %.3f, recall %.3f, false moves %.4f per product and refit; want >= 0.95, >= 0.9, <= 0.005",
@@ -325,4 +327,119 @@ func filterDefaults() Config {
 	cfg := DefaultConfig()
 	cfg.Rule = RuleFilter
 	return cfg
+}
+
+// hazardPairs returns, for a run evaluated under the filter rule, the
+// (P(switched since the label was set), planted truth) pairs of every
+// product established at the refit and the one before: the truth is
+// whether its true segment differs from the one it had when its label
+// was last set (at the refit its provisional label stood, or a move).
+func hazardPairs(runs []simRefit) (pred []float64, obs []bool) {
+	anchor := map[string]int{}
+	established := map[string]bool{}
+	for r, sr := range runs {
+		moved := map[string]bool{}
+		for _, e := range byKind(sr.out.Events, KindMoved) {
+			moved[e.Data.(Moved).Product] = true
+		}
+		for i, p := range sr.in.Products {
+			if r > 0 && established[p] && !sr.out.Provisional[i] {
+				pred = append(pred, filterMoved(sr, i))
+				obs = append(obs, sr.truth[i] != anchor[p])
+			}
+			if sr.out.Provisional[i] || moved[p] || !established[p] {
+				anchor[p] = sr.truth[i]
+			}
+			established[p] = !sr.out.Provisional[i]
+		}
+	}
+	return pred, obs
+}
+
+// TestFilterCalibrationHazard checks the calibration of the filter's
+// P(switched since the label was set) where its switch model holds:
+// every product switches segment with probability 0.02 at every refit
+// (synth.Sequence.Hazard), and the filter's SwitchRate is that 0.02. In
+// every bin of tenths with at least 20 pairs the observed share must be
+// within 0.1 of the mean prediction or within 2 binomial standard errors
+// (calibration). Separated segments (the demo's three), independent
+// refits; 12 refits of 200 products, 48 particles (-short: 8 refits of
+// 150).
+// With -backtest it also runs 5 seeds of 250 products, 128 particles,
+// separated and overlapping, independent and re-estimated, and logs them;
+// the separated ones must pass.
+func TestFilterCalibrationHazard(t *testing.T) {
+	const hazard = 0.02
+	fc := filterDefaults()
+	fc.SwitchRate = hazard
+	type hcase struct {
+		name            string
+		overlap         bool
+		drift           float64
+		products, parts int
+		refits          int
+		seeds           []uint64
+	}
+	cases := []hcase{{name: "separated/independent", products: 200, parts: 48, refits: 12, seeds: []uint64{21}}}
+	if testing.Short() {
+		cases[0].products, cases[0].refits = 150, 8
+	}
+	if *backtestFlag {
+		seeds := []uint64{21, 22, 23, 24, 25}
+		cases = []hcase{
+			{"separated/independent", false, 0, 250, 128, 12, seeds},
+			{"separated/re-estimated", false, 0.1, 250, 128, 12, seeds},
+			{"overlapping/independent", true, 0, 310, 128, 12, seeds},
+			{"overlapping/re-estimated", true, 0.1, 310, 128, 12, seeds},
+		}
+	}
+	for _, c := range cases {
+		var pred []float64
+		var obs []bool
+		var bandPred []float64
+		var bandObs []bool
+		for _, seed := range c.seeds {
+			bc := btCase{overlap: c.overlap, products: c.products}
+			cfg := bc.config(seed)
+			_, runs := simulateHazard(t, cfg, c.refits, 0, c.drift, hazard, c.parts, seed)
+			p, o := hazardPairs(evaluateRuns(t, fc, runs))
+			pred, obs = append(pred, p...), append(obs, o...)
+			// The band rule's implied probability on the same refits.
+			bandRuns := evaluateRuns(t, DefaultConfig(), runs)
+			anchor, est := map[string]int{}, map[string]bool{}
+			for r, sr := range bandRuns {
+				moved := map[string]bool{}
+				for _, e := range byKind(sr.out.Events, KindMoved) {
+					moved[e.Data.(Moved).Product] = true
+				}
+				for i, pid := range sr.in.Products {
+					if r > 0 && est[pid] && !sr.out.Provisional[i] {
+						q := 1.0
+						for cc, id := range sr.out.SegmentIDs {
+							if id == bandRuns[r-1].out.Labels[bandRuns[r-1].index[pid]] {
+								q = 1 - sr.in.Summary.Membership[i][cc]
+							}
+						}
+						bandPred = append(bandPred, q)
+						bandObs = append(bandObs, sr.truth[i] != anchor[pid])
+					}
+					if sr.out.Provisional[i] || moved[pid] || !est[pid] {
+						anchor[pid] = sr.truth[i]
+					}
+					est[pid] = !sr.out.Provisional[i]
+				}
+			}
+		}
+		tb, bad := calibration(pred, obs)
+		f := btScore{pred: pred, obs: obs}
+		b := btScore{pred: bandPred, obs: bandObs}
+		t.Logf("%s, hazard %.2f, %d seeds, %d products, %d particles, %d refits: filter Brier %.4f, band rule's implied 1 - membership Brier %.4f; filter calibration over %d pairs:\n%s",
+			c.name, hazard, len(c.seeds), c.products, c.parts, c.refits, f.brier(), b.brier(), len(pred), tb)
+		if c.overlap {
+			continue
+		}
+		for _, msg := range bad {
+			t.Errorf("%s: %s", c.name, msg)
+		}
+	}
 }

@@ -89,9 +89,9 @@ type Config struct {
 	// their data and the backtest of the category shows repeated false
 	// moves.
 	Temper float64
-	// MoveProb, in (0.5, 1), is the filter's probability at or above
-	// which a product is moved: that it has switched since its label was
-	// set, or (a relabel) that it is not in its labelled segment.
+	// MoveProb, in (0.5, 1), is the filter's probability that a product
+	// has switched segment since its label was set at or above which it
+	// is moved.
 	MoveProb float64
 
 	// AlertBudget >= 0 caps the number of missed-competitor alerts in
@@ -122,10 +122,10 @@ func (c Config) alertLimit(n int) int {
 
 // DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
 // 0.25, AlertProb 0.5, RealertMargin 0.1, SplitShare 0.3, the band rule,
-// and for the filter SwitchRate 0.01, Temper 1 and MoveProb 0.8.
+// and for the filter SwitchRate 0.01, Temper 1 and MoveProb 0.6.
 func DefaultConfig() Config {
 	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3,
-		Rule: RuleBand, SwitchRate: 0.01, Temper: 1, MoveProb: 0.8}
+		Rule: RuleBand, SwitchRate: 0.01, Temper: 1, MoveProb: 0.6}
 }
 
 // Validate reports the first setting out of range; errors wrap ErrConfig
@@ -155,9 +155,9 @@ func (c Config) Validate() error {
 	case !(c.MoveProb > 0.5 && c.MoveProb < 1):
 		return fmt.Errorf("%w: move_prob %v, want in (0.5, 1)", ErrConfig, c.MoveProb)
 	case c.AlertBudget < 0:
-		return fmt.Errorf("%w: alert_budget %d, want >= 0 (0: no cap)", ErrConfig, c.AlertBudget)
+		return fmt.Errorf("%w: max_alerts %d, want >= 0 (0: no cap)", ErrConfig, c.AlertBudget)
 	case !(c.AlertShare >= 0 && c.AlertShare <= 1):
-		return fmt.Errorf("%w: alert_share %v, want in [0, 1] (0: no cap)", ErrConfig, c.AlertShare)
+		return fmt.Errorf("%w: max_alert_share %v, want in [0, 1] (0: no cap)", ErrConfig, c.AlertShare)
 	}
 	return nil
 }

@@ -115,14 +115,9 @@ type Moved struct {
 	FromRetired bool `json:"from_retired,omitempty"`
 	// Probability, under the filter rule (Config.Rule), is the filter's
 	// probability that the product has switched segment since its label
-	// From was set, in [MoveProb, 1] (1 when From retired) unless
-	// Relabel; absent under the band rule.
+	// From was set, in [MoveProb, 1] (1 when From retired); absent under
+	// the band rule.
 	Probability *float64 `json:"probability,omitempty"`
-	// Relabel, under the filter rule, marks a move that corrects a label
-	// set on an uncertain state: the product is probably not in From
-	// (probability <= 1 - MoveProb) but probably never switched
-	// (Probability < MoveProb).
-	Relabel bool `json:"relabel,omitempty"`
 }
 
 // Born is the body of a born event: a point segment that matched no

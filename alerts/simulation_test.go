@@ -44,9 +44,18 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 // emissions (sequential.SegmentLogPredictive over the same draws).
 func simulateDrift(t *testing.T, cfg synth.Config, refits int, share, drift float64, particles int, seed uint64) (*synth.Sequence, []simRefit) {
 	t.Helper()
+	return simulateHazard(t, cfg, refits, share, drift, 0, particles, seed)
+}
+
+// simulateHazard is simulateDrift where, besides the planted switches,
+// every product switches segment with probability hazard at every refit
+// after the first (synth.Sequence.Hazard).
+func simulateHazard(t *testing.T, cfg synth.Config, refits int, share, drift, hazard float64, particles int, seed uint64) (*synth.Sequence, []simRefit) {
+	t.Helper()
 	src := rand.New(rand.NewPCG(seed, 101))
 	seq := synth.NewSequence(cfg, refits, share, src)
 	seq.Drift = drift
+	seq.Hazard = hazard
 	pc := sequential.DefaultParticleConfig()
 	pc.Particles = particles
 	ps, err := sequential.NewParticles(pc, seed, 202)

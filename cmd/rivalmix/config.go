@@ -89,8 +89,8 @@ type modelSettings struct {
 	SwitchRate       *float64 `yaml:"switch_rate"`
 	Temper           *float64 `yaml:"temper"`
 	MoveProb         *float64 `yaml:"move_prob"`
-	AlertBudget      *int     `yaml:"alert_budget"`
-	AlertShare       *float64 `yaml:"alert_share"`
+	AlertBudget      *int     `yaml:"max_alerts"`
+	AlertShare       *float64 `yaml:"max_alert_share"`
 	Alpha            *struct {
 		Shape float64 `yaml:"shape"`
 		Rate  float64 `yaml:"rate"`

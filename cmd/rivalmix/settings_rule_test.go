@@ -17,7 +17,7 @@ func TestMoveRuleSettings(t *testing.T) {
 	t.Parallel()
 	dir := t.TempDir()
 	path := filepath.Join(dir, "rules.yaml")
-	body := "categories:\n  cereal:\n    move_rule: filter\n    switch_rate: 0.014\n    temper: 0.8\n    move_prob: 0.85\n    alert_budget: 20\n    alert_share: 0.1\n"
+	body := "categories:\n  cereal:\n    move_rule: filter\n    switch_rate: 0.014\n    temper: 0.8\n    move_prob: 0.85\n    max_alerts: 20\n    max_alert_share: 0.1\n"
 	if err := os.WriteFile(path, []byte(body), 0o644); err != nil {
 		t.Fatal(err)
 	}
@@ -34,7 +34,7 @@ func TestMoveRuleSettings(t *testing.T) {
 	if d := sc.Worker.Alerts; d.Rule != alerts.RuleBand || d.AlertBudget != 0 {
 		t.Errorf("defaults changed: %+v", d)
 	}
-	for key, line := range map[string]string{"move_rule": "move_rule: blend", "alert_share": "alert_share: 1.5", "temper": "temper: 0"} {
+	for key, line := range map[string]string{"move_rule": "move_rule: blend", "max_alert_share": "max_alert_share: 1.5", "temper": "temper: 0"} {
 		bad := filepath.Join(dir, key+".yaml")
 		os.WriteFile(bad, []byte("defaults:\n  "+line+"\n"), 0o644)
 		f.configFile = bad
