@@ -46,10 +46,14 @@ func ParseMoveRule(s string) (MoveRule, error) {
 // probability that the product is in c now; it can move away from the
 // label without a switch when the label was uncertain when it was set.
 //
-// Transition: the product stays in its segment with probability 1 - eps,
-// flag unchanged, and switches to each of the other K - 1 live segments
-// with probability eps / (K - 1), setting the flag (Config.SwitchRate is
-// eps).
+// Transition: the product stays in its segment b with probability
+// 1 - eps, flag unchanged, and switches to another live segment c with
+// probability eps size[c] / (N - size[b]), setting the flag
+// (Config.SwitchRate is eps; size[c] is the number of products in point
+// segment c at the refit, N their total): a switch lands in a segment in
+// proportion to its size, as a new product would (the Chinese
+// restaurant process), so the small, often one-product, segments of a
+// point partition do not draw prior mass away from the real ones.
 //
 // Emission: e[c] = the posterior predictive density of the refit's datum
 // as a member of segment c (sequential.SegmentLogPredictive, mixed over
@@ -69,8 +73,8 @@ func ParseMoveRule(s string) (MoveRule, error) {
 //	st_1[0][c] ∝ size[c] e_1[c]^gamma,  st_1[1][c] = 0
 //	st_t[s][c] ∝ (sum_{b,r} st_{t-1}[r][b] T[(b,r)][(c,s)]) e_t[c]^gamma
 //
-// with T[(c,r)][(c,r)] = 1 - eps and T[(b,r)][(c,1)] = eps / (K - 1) for
-// b != c. When the label changes (a moved event) the flag is cleared:
+// with T[(c,r)][(c,r)] = 1 - eps and T[(b,r)][(c,1)] = eps size[c] /
+// (N - size[b]) for b != c. When the label changes (a moved event) the flag is cleared:
 // st[0] += st[1], st[1] = 0.
 
 // fstate is a filter state: st[c] (flag 0) and st[K+c] (flag 1).
@@ -109,20 +113,33 @@ func filterInit(sizes []int, logEm []float64, gamma float64) fstate {
 	return filterUpdate(st, logEm, gamma)
 }
 
-// filterPredict applies the sticky transition to a state that sums to 1.
-func filterPredict(prev fstate, eps float64) fstate {
+// filterPredict applies the sticky transition to a state that sums to 1,
+// with the point segments' sizes of the refit it moves to.
+func filterPredict(prev fstate, eps float64, sizes []int) fstate {
 	k := prev.k()
 	out := make(fstate, 2*k)
-	if k == 1 {
-		copy(out, prev)
-		return out
+	total := 0
+	for _, s := range sizes {
+		total += s
 	}
-	move := eps / float64(k-1)
+	// away[b] = m_b / (N - size_b): the marginal mass of b per product
+	// outside b; the flow into c is eps size_c sum_{b != c} away[b].
+	var sumAway float64
+	away := make([]float64, k)
+	for b := 0; b < k; b++ {
+		if rest := total - sizes[b]; rest > 0 {
+			away[b] = prev.marginal(b) / float64(rest)
+			sumAway += away[b]
+		}
+	}
 	for c := 0; c < k; c++ {
-		m := prev.marginal(c)
+		if total-sizes[c] == 0 {
+			// One segment holds every product: nowhere to switch to.
+			out[c], out[k+c] = prev[c], prev[k+c]
+			continue
+		}
 		out[c] = prev[c] * (1 - eps)
-		// arrive from every other segment, either flag: (1 - m) eps / (K-1).
-		out[k+c] = prev[k+c]*(1-eps) + (1-m)*move
+		out[k+c] = prev[k+c]*(1-eps) + eps*float64(sizes[c])*(sumAway-away[c])
 	}
 	return out
 }
@@ -235,12 +252,12 @@ func filterCarry(prev map[string][2]float64, lab *labelling) (state fstate, ok b
 func filterStep(cfg Config, prev map[string][2]float64, reported string, lab *labelling, sizes []int, logEm []float64) fstate {
 	if prev != nil {
 		if st, ok := filterCarry(prev, lab); ok {
-			return filterUpdate(filterPredict(st, cfg.SwitchRate), logEm, cfg.Temper)
+			return filterUpdate(filterPredict(st, cfg.SwitchRate, sizes), logEm, cfg.Temper)
 		}
 	} else if c, live := lab.live[reported]; live {
 		st := make(fstate, 2*len(sizes))
 		st[c] = 1
-		return filterUpdate(filterPredict(st, cfg.SwitchRate), logEm, cfg.Temper)
+		return filterUpdate(filterPredict(st, cfg.SwitchRate, sizes), logEm, cfg.Temper)
 	}
 	return filterInit(sizes, logEm, cfg.Temper)
 }

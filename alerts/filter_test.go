@@ -13,8 +13,8 @@ var (
 	tinySizes = []int{5, 3, 2}
 	tinyEm    = [][]float64{
 		{-0.3, -2.6, -5.0},
-		{-3.2, -1.9, -0.5},
-		{-4.0, -2.6, -0.3},
+		{-5.5, -3.4, -0.2},
+		{-6.5, -3.9, -0.1},
 	}
 	tinyEps, tinyGamma = 0.08, 0.6
 )
@@ -25,8 +25,9 @@ var (
 //
 //	P(z, e) ∝ size[z_1] e_1[z_1]^gamma prod_{t>1} T(z_{t-1}, z_t) e_t[z_t]^gamma
 //
-// with T(b, c) = 1 - eps when b = c and eps / (K - 1) otherwise. Written
-// independently of filter.go: no shared helper.
+// with T(b, c) = 1 - eps when b = c and eps size[c] / (N - size[b])
+// otherwise (N the sum of the sizes). Written independently of
+// filter.go: no shared helper.
 func enumerate(sizes []int, em [][]float64, eps, gamma float64) (marg []float64, switched float64) {
 	k, steps := len(sizes), len(em)
 	marg = make([]float64, k)
@@ -38,7 +39,11 @@ func enumerate(sizes []int, em [][]float64, eps, gamma float64) (marg []float64,
 			w := float64(sizes[path[0]]) * math.Pow(math.Exp(em[0][path[0]]), gamma)
 			changed := false
 			for s := 1; s < steps; s++ {
-				tr := eps / float64(k-1)
+				n := 0
+				for _, z := range sizes {
+					n += z
+				}
+				tr := eps * float64(sizes[path[s]]) / float64(n-sizes[path[s-1]])
 				if path[s] == path[s-1] {
 					tr = 1 - eps
 				} else {
@@ -70,7 +75,7 @@ func enumerate(sizes []int, em [][]float64, eps, gamma float64) (marg []float64,
 func forward(sizes []int, em [][]float64, eps, gamma float64) ([]float64, float64) {
 	st := filterInit(sizes, em[0], gamma)
 	for _, e := range em[1:] {
-		st = filterUpdate(filterPredict(st, eps), e, gamma)
+		st = filterUpdate(filterPredict(st, eps, sizes), e, gamma)
 	}
 	marg := make([]float64, st.k())
 	for c := range marg {
@@ -107,7 +112,8 @@ func TestFilterForwardMatchesEnumeration(t *testing.T) {
 
 // TestFilterEnumerationSensitive: the tiny case tells every term of the
 // recursion apart: dropping the transition (eps = 0 in the recursion),
-// the tempering (gamma = 1), the size prior (uniform sizes), or one
+// the tempering (gamma = 1), the sizes (uniform, in the prior and the
+// transition), or one
 // refit's emission each moves the final marginal or P(switched) by more
 // than 0.01 from the enumeration, so TestFilterForwardMatchesEnumeration
 // would fail.
