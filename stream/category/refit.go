@@ -35,7 +35,7 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	}
 	w.ps.SettleRefit()
 	data := w.ps.Data()
-	sum, err := w.ps.Summary(w.cfg.Summary)
+	sum, err := w.ps.Summary(w.summaryOptions())
 	if err != nil {
 		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
 	}
@@ -80,7 +80,7 @@ func (w *Worker) Current() (RefitReport, error) {
 		return rep, nil
 	}
 	data := w.ps.Data()
-	sum, err := sequential.Summarize(w.ps.Draws(), data, w.cfg.Summary)
+	sum, err := sequential.Summarize(w.ps.Draws(), data, w.summaryOptions())
 	if err != nil {
 		return rep, fmt.Errorf("category %s: %w", w.category, err)
 	}
@@ -114,4 +114,14 @@ func (w *Worker) emission(data []*sequential.Datum, sum sequential.Summary) ([][
 		return nil, nil
 	}
 	return sequential.SegmentLogPredictive(w.ps.Draws(), data, sum.Partition, len(sum.Segments), w.cfg.Summary.Prior)
+}
+
+// summaryOptions returns the category's summary options with ExcessFrom
+// lowered, when needed, to the lowest probability at which a
+// missed-competitor alert stays in force (AlertProb - RealertMargin), so
+// that every alert in force has its expected excess for the ranking.
+func (w *Worker) summaryOptions() sequential.SummaryOptions {
+	opt := w.cfg.Summary
+	opt.ExcessFrom = min(opt.ExcessFrom, max(0, w.cfg.Alerts.AlertProb-w.cfg.Alerts.RealertMargin))
+	return opt
 }
