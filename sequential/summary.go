@@ -613,9 +613,17 @@ func (m MixedNext) ExpectedExcess(t float64) float64 {
 	if !m.Defined() {
 		return math.NaN()
 	}
+	// Particles that descend from one ancestor often share the
+	// product's segment kernel: each distinct law is integrated once.
+	seen := make(map[NextValue]float64)
 	var s float64
 	for k, nv := range m.laws {
-		s += m.w[k] * nv.ExpectedExcess(t)
+		e, ok := seen[nv]
+		if !ok {
+			e = nv.ExpectedExcess(t)
+			seen[nv] = e
+		}
+		s += m.w[k] * e
 	}
 	return s / m.wsum
 }
