@@ -466,7 +466,8 @@ type filterDecision struct {
 // refits. An established product moves, with a moved event:
 //   - when P(switched since its label was set) reaches MoveProb, to the
 //     most probable other segment;
-//   - at once when its labelled segment retired (probability 1).
+//   - at once when its labelled segment retired (the event still carries
+//     P(switched), which may be low: the segment went, not the product).
 //
 // A label is not corrected without a probable switch: when the product's
 // state drifts to another segment with flag 0 (the label was set on an
@@ -504,7 +505,7 @@ func filterDecide(cfg Config, prev Memory, p string, known bool, old string, hel
 	oc, live := lab.live[old]
 	switch {
 	case !live:
-		d.label, d.event, d.moved = best, true, 1
+		d.label, d.event = best, true
 	case d.moved >= cfg.MoveProb:
 		d.label, d.event = argmaxMarginal(st, oc), true
 	default:

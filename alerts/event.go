@@ -115,8 +115,9 @@ type Moved struct {
 	FromRetired bool `json:"from_retired,omitempty"`
 	// Probability, under the filter rule (Config.Rule), is the filter's
 	// probability that the product has switched segment since its label
-	// From was set, in [MoveProb, 1] (1 when From retired); absent under
-	// the band rule.
+	// From was set, in [MoveProb, 1] unless From retired (then any value:
+	// the segment went, not necessarily the product); absent under the
+	// band rule.
 	Probability *float64 `json:"probability,omitempty"`
 }
 
