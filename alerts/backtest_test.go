@@ -260,9 +260,11 @@ func btRow(rule string, s *btScore) string {
 // on overlapping segments it logs the scores (see README: the filter does
 // not beat the band rule there, and the band rule stays the default).
 // Without the flag (CI) one seed of separated segments with independent
-// refits runs at 200 products and 48 particles and asserts the same
-// targets and that the filter's Brier score is below the band rule's.
+// refits runs at 200 products and 48 particles (-short: 120 and 32) and
+// asserts the same targets and that the filter's Brier score is below
+// the band rule's.
 func TestBacktestMoveRules(t *testing.T) {
+	t.Parallel()
 	cases := []btCase{
 		{name: "separated/independent", products: 250, particles: 128},
 		{name: "separated/re-estimated", drift: 0.1, products: 250, particles: 128},
@@ -272,6 +274,9 @@ func TestBacktestMoveRules(t *testing.T) {
 	seeds := []uint64{11, 12, 13, 14, 15}
 	if !*backtestFlag {
 		cases = []btCase{{name: "separated/independent (CI size)", products: 200, particles: 48}}
+		if testing.Short() {
+			cases[0].products, cases[0].particles = 120, 32
+		}
 		seeds = seeds[:1]
 	}
 	def := filterDefaults()
@@ -364,11 +369,12 @@ func hazardPairs(runs []simRefit) (pred []float64, obs []bool) {
 // within 0.1 of the mean prediction or within 2 binomial standard errors
 // (calibration). Separated segments (the demo's three), independent
 // refits; 12 refits of 200 products, 48 particles (-short: 8 refits of
-// 150).
+// 120, 32 particles).
 // With -backtest it also runs 5 seeds of 250 products, 128 particles,
 // separated and overlapping, independent and re-estimated, and logs them;
 // the separated ones must pass.
 func TestFilterCalibrationHazard(t *testing.T) {
+	t.Parallel()
 	const hazard = 0.02
 	fc := filterDefaults()
 	fc.SwitchRate = hazard
@@ -382,7 +388,7 @@ func TestFilterCalibrationHazard(t *testing.T) {
 	}
 	cases := []hcase{{name: "separated/independent", products: 200, parts: 48, refits: 12, seeds: []uint64{21}}}
 	if testing.Short() {
-		cases[0].products, cases[0].refits = 150, 8
+		cases[0].products, cases[0].parts, cases[0].refits = 120, 32, 8
 	}
 	if *backtestFlag {
 		seeds := []uint64{21, 22, 23, 24, 25}
