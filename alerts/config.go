@@ -67,12 +67,65 @@ type Config struct {
 	// for a split to be reported, and that each of two previous segments
 	// must send to one new segment for a merge.
 	SplitShare float64
+
+	// Rule picks the move rule: RuleBand (the membership band above) or
+	// RuleFilter (the switch filter, filter.go). The settings below are
+	// the filter's; the band rule ignores them.
+	Rule MoveRule
+	// SwitchRate, eps in (0, 0.5], is the filter's prior probability
+	// that a product changes segment between two refits. Default rule:
+	// the share of products expected to change segment per refit, e.g.
+	// 10% of a category over 8 weekly refits is 0.1 / 7 = 0.014; the
+	// default 0.01 is one product in a hundred per refit.
+	SwitchRate float64
+	// Temper, gamma in (0, 1], is the power the filter raises each
+	// refit's predictive density to. A refit re-estimated on mostly the
+	// same weeks of sales as the last repeats much of its evidence, and
+	// gamma < 1 discounts it. The default is 1: on simulated refits that
+	// re-estimate the same values (alerts/backtest_test.go) a smaller
+	// gamma only delayed the detection of real moves without removing
+	// false ones, because the false ones come from the segmentation, not
+	// from evidence counted twice. Lower it where refits share most of
+	// their data and the backtest of the category shows repeated false
+	// moves.
+	Temper float64
+	// MoveProb, in (0.5, 1), is the filter's probability that a product
+	// has switched segment since its label was set at or above which it
+	// is moved.
+	MoveProb float64
+
+	// AlertBudget >= 0 caps the number of missed-competitor alerts in
+	// force per refit: the top AlertBudget by expected excess over the
+	// threshold; 0 sets no cap.
+	AlertBudget int
+	// AlertShare, in [0, 1], caps the alerts in force at that share of
+	// the category's products (rounded up); 0 sets no cap. With both
+	// caps set the smaller applies. Neither changes which products meet
+	// the threshold rule, only how many of them are alerted.
+	AlertShare float64
+}
+
+// alertLimit returns the alert cap for n products, -1 for none.
+func (c Config) alertLimit(n int) int {
+	limit := -1
+	if c.AlertBudget > 0 {
+		limit = c.AlertBudget
+	}
+	if c.AlertShare > 0 {
+		s := int(math.Ceil(c.AlertShare * float64(n)))
+		if limit < 0 || s < limit {
+			limit = s
+		}
+	}
+	return limit
 }
 
 // DefaultConfig returns MoveIn 0.6, MoveOut 0.4, Confirm 2, Threshold
-// 0.25, AlertProb 0.5, RealertMargin 0.1 and SplitShare 0.3.
+// 0.25, AlertProb 0.5, RealertMargin 0.1, SplitShare 0.3, the band rule,
+// and for the filter SwitchRate 0.01, Temper 1 and MoveProb 0.6.
 func DefaultConfig() Config {
-	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3}
+	return Config{MoveIn: 0.6, MoveOut: 0.4, Confirm: 2, Threshold: 0.25, AlertProb: 0.5, RealertMargin: 0.1, SplitShare: 0.3,
+		Rule: RuleBand, SwitchRate: 0.01, Temper: 1, MoveProb: 0.6}
 }
 
 // Validate reports the first setting out of range; errors wrap ErrConfig
@@ -93,6 +146,18 @@ func (c Config) Validate() error {
 		return fmt.Errorf("%w: realert_margin %v, want in (0, 1)", ErrConfig, c.RealertMargin)
 	case !(c.SplitShare > 0 && c.SplitShare <= 0.5):
 		return fmt.Errorf("%w: split_share %v, want in (0, 0.5]", ErrConfig, c.SplitShare)
+	case c.Rule != RuleBand && c.Rule != RuleFilter:
+		return fmt.Errorf("%w: move_rule %q, want band or filter", ErrConfig, c.Rule)
+	case !(c.SwitchRate > 0 && c.SwitchRate <= 0.5):
+		return fmt.Errorf("%w: switch_rate %v, want in (0, 0.5]", ErrConfig, c.SwitchRate)
+	case !(c.Temper > 0 && c.Temper <= 1):
+		return fmt.Errorf("%w: temper %v, want in (0, 1]", ErrConfig, c.Temper)
+	case !(c.MoveProb > 0.5 && c.MoveProb < 1):
+		return fmt.Errorf("%w: move_prob %v, want in (0.5, 1)", ErrConfig, c.MoveProb)
+	case c.AlertBudget < 0:
+		return fmt.Errorf("%w: max_alerts %d, want >= 0 (0: no cap)", ErrConfig, c.AlertBudget)
+	case !(c.AlertShare >= 0 && c.AlertShare <= 1):
+		return fmt.Errorf("%w: max_alert_share %v, want in [0, 1] (0: no cap)", ErrConfig, c.AlertShare)
 	}
 	return nil
 }

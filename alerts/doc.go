@@ -28,13 +28,31 @@
 // MoveOut in the old one, so a product whose posterior hovers between two
 // segments does not flap.
 //
+// # The switch filter
+//
+// With Config.Rule = RuleFilter a hidden Markov model over each
+// product's stable segment id decides moves instead (filter.go): a sticky
+// transition (stay with probability 1 - SwitchRate), the posterior
+// predictive density of each refit's datum under each segment as the
+// emission (tempered by Temper), forward filtering, and a flag that
+// records whether the product has switched since its label was set. A
+// product moves when P(switched) reaches MoveProb; the moved event
+// carries it. Its state, 2K numbers per product, is kept in
+// Memory.Filter and mapped across births, retirements, splits and
+// merges. alerts/backtest_test.go compares both rules on simulated
+// refits.
+//
 // # Missed competitors
 //
 // A product with n < L reported competitors has a next, unreported value
 // Y_(n+1). When P(Y_(n+1) > Threshold) >= AlertProb it is alerted. The
 // alert is repeated only if the probability rises RealertMargin above
 // the last alert's, and cleared once it falls below AlertProb -
-// RealertMargin (or the product reports every candidate).
+// RealertMargin (or the product reports every candidate). Alerts in
+// force are ranked by E[(Y_(n+1) - Threshold)+] (Outcome.Watchlist, with
+// status new, still or cleared); an optional budget (AlertBudget,
+// AlertShare) keeps only the top ones, without changing who meets the
+// threshold rule.
 //
 // # Events
 //

@@ -113,6 +113,12 @@ type Moved struct {
 	ToMembership   float64 `json:"to_membership"`
 	// FromRetired is true when From no longer exists.
 	FromRetired bool `json:"from_retired,omitempty"`
+	// Probability, under the filter rule (Config.Rule), is the filter's
+	// probability that the product has switched segment since its label
+	// From was set, in [MoveProb, 1] unless From retired (then any value:
+	// the segment went, not necessarily the product); absent under the
+	// band rule.
+	Probability *float64 `json:"probability,omitempty"`
 }
 
 // Born is the body of a born event: a point segment that matched no
@@ -201,6 +207,15 @@ type Missed struct {
 	// repeat because the probability rose by RealertMargin; absent for a
 	// first alert.
 	Previous *float64 `json:"previous,omitempty"`
+	// Excess is E[(next value - Threshold)+], the expected amount by
+	// which the next value exceeds the threshold: what the alerts are
+	// ranked by.
+	Excess float64 `json:"excess"`
+	// Rank, from 1, is the product's place among the category's alerts
+	// in force after this refit, by Excess (Outcome.Watchlist).
+	Rank int `json:"rank"`
+	// Status is "new" for a first alert and "still" for a repeat.
+	Status string `json:"status"`
 }
 
 // Cleared is the body of a cleared event: an alerted product's
@@ -218,6 +233,9 @@ type Cleared struct {
 	Alerted float64 `json:"alerted"`
 	// NoNextValue is true when the product reported every candidate.
 	NoNextValue bool `json:"no_next_value,omitempty"`
+	// OverBudget is true when the alert still meets the threshold rule
+	// but fell outside the category's alert budget.
+	OverBudget bool `json:"over_budget,omitempty"`
 }
 
 // RefitSummary is the body of the summary event, one per refit.

@@ -3,6 +3,7 @@ package alerts
 import (
 	"fmt"
 	"maps"
+	"math"
 	"slices"
 	"strconv"
 	"strings"
@@ -40,6 +41,14 @@ type Memory struct {
 	// Alert holds the missed-competitor memory of products that have had
 	// a missed or cleared event.
 	Alert map[string]AlertMemory `json:"alert"`
+	// Filter holds the switch filter's state of each product present at
+	// the last refit evaluated with Config.Rule = RuleFilter: for each
+	// live segment id, [P(in it, no switch since the label was set),
+	// P(in it, switched since)], summing to 1 over the ids (filter.go).
+	// Absent under the band rule; a memory written without it (an older
+	// version, or the band rule) starts each product's filter from its
+	// reported segment.
+	Filter map[string]map[string][2]float64 `json:"filter,omitempty"`
 }
 
 // PendingMove is a move that has met its conditions at Count (>= 1)
@@ -103,6 +112,27 @@ func (m Memory) Validate() error {
 		}
 		if !(a.Probability >= 0 && a.Probability <= 1) {
 			return fmt.Errorf("%w: alert[%q].probability %v, want in [0, 1]", ErrMemory, p, a.Probability)
+		}
+	}
+	for _, p := range slices.Sorted(maps.Keys(m.Filter)) {
+		if p == "" {
+			return fmt.Errorf("%w: filter has an empty product id", ErrMemory)
+		}
+		sum := 0.0
+		for _, id := range slices.Sorted(maps.Keys(m.Filter[p])) {
+			v := m.Filter[p][id]
+			if k, ok := parseSegmentID(id); !ok || k > m.Issued {
+				return fmt.Errorf("%w: filter[%q] names segment %q, want S1..S%d", ErrMemory, p, id, m.Issued)
+			}
+			for _, x := range v {
+				if !(x >= 0 && x <= 1) {
+					return fmt.Errorf("%w: filter[%q][%q] = %v, want probabilities in [0, 1]", ErrMemory, p, id, v)
+				}
+				sum += x
+			}
+		}
+		if math.Abs(sum-1) > 1e-6 {
+			return fmt.Errorf("%w: filter[%q] sums to %v, want 1", ErrMemory, p, sum)
 		}
 	}
 	return nil

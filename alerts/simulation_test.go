@@ -35,8 +35,27 @@ type simRefit struct {
 // particle system's slot order. evaluateRuns then applies the alert rules.
 func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particles int, seed uint64) (*synth.Sequence, []simRefit) {
 	t.Helper()
+	return simulateDrift(t, cfg, refits, share, 0, particles, seed)
+}
+
+// simulateDrift is simulate with refits that re-estimate each product's
+// values with log-scale noise drift (synth.Sequence.Drift) instead of
+// redrawing them when drift > 0. Each refit also carries the filter's
+// emissions (sequential.SegmentLogPredictive over the same draws).
+func simulateDrift(t *testing.T, cfg synth.Config, refits int, share, drift float64, particles int, seed uint64) (*synth.Sequence, []simRefit) {
+	t.Helper()
+	return simulateHazard(t, cfg, refits, share, drift, 0, particles, seed)
+}
+
+// simulateHazard is simulateDrift where, besides the planted switches,
+// every product switches segment with probability hazard at every refit
+// after the first (synth.Sequence.Hazard).
+func simulateHazard(t *testing.T, cfg synth.Config, refits int, share, drift, hazard float64, particles int, seed uint64) (*synth.Sequence, []simRefit) {
+	t.Helper()
 	src := rand.New(rand.NewPCG(seed, 101))
 	seq := synth.NewSequence(cfg, refits, share, src)
+	seq.Drift = drift
+	seq.Hazard = hazard
 	pc := sequential.DefaultParticleConfig()
 	pc.Particles = particles
 	ps, err := sequential.NewParticles(pc, seed, 202)
@@ -64,14 +83,19 @@ func simulate(t *testing.T, cfg synth.Config, refits int, share float64, particl
 		}
 		ps.SettleRefit()
 		data := ps.Data()
-		sum, err := sequential.Summarize(ps.Draws(), data, opt)
+		draws := ps.Draws()
+		sum, err := sequential.Summarize(draws, data, opt)
+		if err != nil {
+			t.Fatal(err)
+		}
+		em, err := sequential.SegmentLogPredictive(draws, data, sum.Partition, len(sum.Segments), opt.Prior)
 		if err != nil {
 			t.Fatal(err)
 		}
 		ids := ps.Products()
 		in := Refit{Category: cfg.Category, Refit: fmt.Sprintf("sim-%d", r), Products: ids,
 			Data: data, Summary: sum, ESS: ps.ESS(), Particles: ps.NumParticles(), Diversity: ps.Diversity(),
-			MeanSurprise: surpriseSum / float64(len(prods))}
+			MeanSurprise: surpriseSum / float64(len(prods)), Emission: em}
 		byID := make(map[string]int, len(prods))
 		for i := range prods {
 			byID[prods[i].ID] = i

@@ -1,6 +1,10 @@
 package sequential
 
-import "math"
+import (
+	"math"
+
+	"gonum.org/v1/gonum/integrate/quad"
+)
 
 // NextValue is the law of the largest unreported relative
 // cross-elasticity Y_(n+1) of a product, given its segment's kernel and
@@ -67,4 +71,68 @@ func (nv NextValue) Quantile(u float64) float64 {
 	w := -Log1mExp(-lg)
 	x := math.Exp(nv.logS) * math.Pow(w, 1/nv.k)
 	return math.Min(x, nv.capX)
+}
+
+// excessNodes and excessWeights are the 8-point Gauss-Legendre rule on
+// [-1, 1] (gonum's quad.Legendre).
+var excessNodes, excessWeights = func() ([]float64, []float64) {
+	x, w := make([]float64, 8), make([]float64, 8)
+	quad.Legendre{}.FixedLocations(x, w, -1, 1)
+	return x, w
+}()
+
+// ExpectedExcess returns E[(Y_(n+1) - t)+] = integral from t of
+// P(Y_(n+1) > x) dx, the expected amount by which the next value exceeds
+// t (0 when t >= y_n). The integral runs over panels whose ends are the
+// quantiles at which the CDF grows a thousandfold from its value at t up
+// to one half, and then the tail probability falls a thousandfold, six
+// times (the tail beyond, under 1e-18 of the median's, is dropped); each
+// panel by 8-point Gauss-Legendre quadrature: about fifty evaluations of
+// the law. Relative accuracy is about 1e-7, ample for ranking alerts
+// (checked against a closed form and gonum's quad.Fixed in
+// excess_test.go).
+func (nv NextValue) ExpectedExcess(t float64) float64 {
+	if !(t > 0) {
+		t = 0
+	}
+	if t >= nv.capX {
+		return 0
+	}
+	tail := nv.Exceed(t)
+	if !(tail > 0) {
+		return 0
+	}
+	var sum float64
+	lo := t
+	panel := func(hi float64) {
+		hi = math.Min(math.Max(hi, lo), nv.capX)
+		if hi > lo {
+			half, mid := (hi-lo)/2, (hi+lo)/2
+			for q, x := range excessNodes {
+				sum += half * excessWeights[q] * nv.Exceed(mid+half*x)
+			}
+		}
+		lo = hi
+	}
+	// Body: CDF levels F(t) 1000^j below one half (from 1e-15 at most:
+	// below that the integrand is 1 to the float64 epsilon).
+	for f := math.Max(nv.CDF(t), 1e-16) * 1000; f < 0.5; f *= 1000 {
+		panel(nv.Quantile(f))
+	}
+	// Tail: levels min(tail, 1/2) 1000^-j.
+	p := math.Min(tail, 0.5)
+	for j := 0; j <= 5 && lo < nv.capX; j++ {
+		panel(nv.upperQuantile(p))
+		p /= 1000
+	}
+	return sum
+}
+
+// upperQuantile returns the x with P(Y_(n+1) > x) = p, p in (0, 1), from
+// log(1 - p) directly so that a tail p far below the float64 epsilon
+// keeps its digits.
+func (nv NextValue) upperQuantile(p float64) float64 {
+	lg := nv.capLogG + math.Log1p(-p)/nv.power
+	w := -Log1mExp(-lg)
+	return math.Min(math.Exp(nv.logS)*math.Pow(w, 1/nv.k), nv.capX)
 }

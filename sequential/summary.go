@@ -26,12 +26,19 @@ type SummaryOptions struct {
 	// next-value summaries; 0 means GOMAXPROCS. Results do not depend on
 	// it.
 	Workers int
+	// ExcessFrom, in [0, 1], is the least PExceed at which
+	// NextSummary.Excess is computed (about a hundred evaluations of the
+	// next-value law per draw); below it Excess is 0. Alerts need it only
+	// for products whose probability passes their alert probability.
+	ExcessFrom float64
 }
 
 // DefaultSummaryOptions returns threshold 0.25, the 10% to 90% interval,
-// at most 50 improvement sweeps and DefaultPrior.
+// at most 50 improvement sweeps, DefaultPrior and ExcessFrom 0.4 (the
+// lowest probability at which an alert stays in force under the default
+// alert settings of package alerts: AlertProb 0.5 - RealertMargin 0.1).
 func DefaultSummaryOptions() SummaryOptions {
-	return SummaryOptions{Threshold: 0.25, QuantileLo: 0.1, QuantileHi: 0.9, MaxSweeps: 50, Prior: DefaultPrior()}
+	return SummaryOptions{Threshold: 0.25, QuantileLo: 0.1, QuantileHi: 0.9, MaxSweeps: 50, Prior: DefaultPrior(), ExcessFrom: 0.4}
 }
 
 // Validate reports the first option out of range; errors wrap ErrConfig
@@ -45,6 +52,9 @@ func (o SummaryOptions) Validate() error {
 	}
 	if o.MaxSweeps < 0 {
 		return fmt.Errorf("%w: summary max sweeps %d, want >= 0", ErrConfig, o.MaxSweeps)
+	}
+	if !(o.ExcessFrom >= 0 && o.ExcessFrom <= 1) {
+		return fmt.Errorf("%w: summary excess_from %v, want in [0, 1]", ErrConfig, o.ExcessFrom)
 	}
 	return o.Prior.Validate()
 }
@@ -111,6 +121,11 @@ type NextSummary struct {
 	Threshold float64
 	// PExceed is P(Y_(n+1) > Threshold), in [0, 1].
 	PExceed float64
+	// Excess is E[(Y_(n+1) - Threshold)+] >= 0, the expected amount by
+	// which the next value exceeds the threshold (relative
+	// cross-elasticity; MixedNext.ExpectedExcess); 0 when undefined or
+	// PExceed < SummaryOptions.ExcessFrom.
+	Excess float64
 	// Median, Lo and Hi are the 0.5, QuantileLo and QuantileHi quantiles
 	// of Y_(n+1) (relative cross-elasticity, in (0, y_n] when n >= 1),
 	// found to 1e-9 relative accuracy.
@@ -405,6 +420,9 @@ func nextSummaries(draws []Draw, w []float64, data []*Datum, opt SummaryOptions)
 				ns.Median, ns.Lo, ns.Hi = math.NaN(), math.NaN(), math.NaN()
 			} else {
 				ns.PExceed = mix.Exceed(opt.Threshold)
+				if ns.PExceed >= opt.ExcessFrom {
+					ns.Excess = mix.ExpectedExcess(opt.Threshold)
+				}
 				ns.Median = mix.Quantile(0.5)
 				ns.Lo = mix.Quantile(opt.QuantileLo)
 				ns.Hi = mix.Quantile(opt.QuantileHi)
@@ -586,4 +604,26 @@ func (m MixedNext) cdfSlope(x, lx float64) (cdf, slope float64) {
 		slope += w * f * nv.power * dlogG
 	}
 	return min(cdf/m.wsum, 1), slope / m.wsum
+}
+
+// ExpectedExcess returns E[(Y_(n+1) - t)+] under the mixture: the
+// weighted mean of each draw's NextValue.ExpectedExcess (the expectation
+// of a mixture is the mixture of expectations).
+func (m MixedNext) ExpectedExcess(t float64) float64 {
+	if !m.Defined() {
+		return math.NaN()
+	}
+	// Particles that descend from one ancestor often share the
+	// product's segment kernel: each distinct law is integrated once.
+	seen := make(map[NextValue]float64)
+	var s float64
+	for k, nv := range m.laws {
+		e, ok := seen[nv]
+		if !ok {
+			e = nv.ExpectedExcess(t)
+			seen[nv] = e
+		}
+		s += m.w[k] * e
+	}
+	return s / m.wsum
 }

@@ -11,6 +11,7 @@ import (
 
 	"go.yaml.in/yaml/v3"
 
+	"rivalmix/alerts"
 	"rivalmix/sequential"
 	"rivalmix/stream/category"
 )
@@ -84,6 +85,12 @@ type modelSettings struct {
 	AlertProbability *float64 `yaml:"alert_probability"`
 	MoveIn           *float64 `yaml:"move_in"`
 	MoveOut          *float64 `yaml:"move_out"`
+	MoveRule         *string  `yaml:"move_rule"`
+	SwitchRate       *float64 `yaml:"switch_rate"`
+	Temper           *float64 `yaml:"temper"`
+	MoveProb         *float64 `yaml:"move_prob"`
+	AlertBudget      *int     `yaml:"max_alerts"`
+	AlertShare       *float64 `yaml:"max_alert_share"`
 	Alpha            *struct {
 		Shape float64 `yaml:"shape"`
 		Rate  float64 `yaml:"rate"`
@@ -158,6 +165,28 @@ func (s modelSettings) apply(w category.WorkerConfig) (category.WorkerConfig, er
 	}
 	if s.MoveOut != nil {
 		w.Alerts.MoveOut = *s.MoveOut
+	}
+	if s.MoveRule != nil {
+		r, err := alerts.ParseMoveRule(*s.MoveRule)
+		if err != nil {
+			return w, err
+		}
+		w.Alerts.Rule = r
+	}
+	if s.SwitchRate != nil {
+		w.Alerts.SwitchRate = *s.SwitchRate
+	}
+	if s.Temper != nil {
+		w.Alerts.Temper = *s.Temper
+	}
+	if s.MoveProb != nil {
+		w.Alerts.MoveProb = *s.MoveProb
+	}
+	if s.AlertBudget != nil {
+		w.Alerts.AlertBudget = *s.AlertBudget
+	}
+	if s.AlertShare != nil {
+		w.Alerts.AlertShare = *s.AlertShare
 	}
 	if s.Alpha != nil {
 		w.Particles.Prior.AlphaShape, w.Particles.Prior.AlphaRate = s.Alpha.Shape, s.Alpha.Rate

@@ -8,6 +8,7 @@ import (
 	"errors"
 	"fmt"
 	"io"
+	"maps"
 	"math"
 	"os"
 	"path/filepath"
@@ -32,6 +33,7 @@ type replayConfig struct {
 	competitors                 int
 	strict, quiet               bool
 	at                          string
+	truth                       string
 	events                      alerts.CloudEventConfig
 }
 
@@ -58,6 +60,8 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	fs.StringVar(&c.report, "report", "", "after the last refit, also write a self-contained HTML report (figures, tables and the timeline over all refits) of one category: name it with --category if the input holds several")
 	fs.BoolVar(&c.similarity, "similarity", false, "with --posterior: also write the N x N co-segment probability matrix")
 	fs.StringVar(&c.at, "time", "", "event time (RFC 3339) of refits whose refit-complete line carries none (default: when the replay starts)")
+	rule := fs.String("move-rule", string(wd.Alerts.Rule), "move rule: band (membership band) or filter (switch filter)")
+	fs.StringVar(&c.truth, "truth", "", "truth file of a simulated input (simulate writes it beside its output): also print the backtest of the moves, precision, recall and false moves per refit")
 	eventFlags(fs, &c.events)
 	if err := parseFlags(fs, args); err != nil {
 		return err
@@ -65,6 +69,18 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 	if c.in == "" || c.out == "" {
 		return usageErrorf(fs, "--in and --out are required")
 	}
+	var truth map[string]map[string]truthRefit
+	if c.truth != "" {
+		var err error
+		if truth, err = readTruth(c.truth); err != nil {
+			return fmt.Errorf("replay: --truth: %w", err)
+		}
+	}
+	mr, err := alerts.ParseMoveRule(*rule)
+	if err != nil {
+		return usageErrorf(fs, "--move-rule: %v", err)
+	}
+	wd.Alerts.Rule = mr
 	wd.Seed = c.seed
 	wd.BatchSize = c.batch
 	wd.Particles.Particles = c.particles
@@ -138,6 +154,11 @@ func runReplay(ctx context.Context, args []string, stdout, stderr io.Writer) err
 		return nil
 	}
 	r.printTable(stdout)
+	if truth != nil {
+		if err := r.printBacktest(stdout, truth); err != nil {
+			return fmt.Errorf("replay: --truth: %w", err)
+		}
+	}
 	fmt.Fprintf(stdout, "\n%d messages applied, %d duplicates, %d rejected, %d events written to %s\n\n%s\n",
 		r.applied, r.duplicates, rej.n, r.events, c.out, alerts.Caution)
 	return nil
@@ -153,6 +174,8 @@ type replayCategory struct {
 	// point (the worker's history keeps only the latest)
 	lastRep *category.RefitReport
 	history []category.RefitPoint
+	// truth holds what the --truth backtest needs of each refit.
+	truth []truthRow
 }
 
 // refitPosterior is what --posterior writes: a refit's draws, data and
@@ -401,6 +424,15 @@ func (r *replayer) complete(rc *replayCategory, refit string, at, start time.Tim
 		rc.history = append(rc.history, rep.History[len(rep.History)-1])
 		rc.lastRep = &rep
 	}
+	if r.cfg.truth != "" {
+		tr := truthRow{refit: refit, products: rep.Products, point: rep.Alerts.Point}
+		for _, ev := range rep.Events {
+			if ev.Kind == alerts.KindMoved {
+				tr.moves = append(tr.moves, ev.Data.(alerts.Moved))
+			}
+		}
+		rc.truth = append(rc.truth, tr)
+	}
 	if r.cfg.posterior != "" && len(rep.Products) > 0 {
 		ps := rc.w.Particles()
 		rc.last = &refitPosterior{products: rep.Products, data: ps.Data(), draws: ps.Draws(), summary: rep.Summary}
@@ -433,4 +465,24 @@ func (r *replayer) printTable(w io.Writer) {
 		}
 	}
 	tw.Flush()
+}
+
+// printBacktest prints, for each replayed category the truth file
+// covers, the moves scored against the planted ones (scoreTruth).
+func (r *replayer) printBacktest(w io.Writer, truth map[string]map[string]truthRefit) error {
+	cats := slices.Sorted(maps.Keys(r.workers))
+	for _, c := range cats {
+		tr, ok := truth[c]
+		if !ok {
+			continue
+		}
+		fmt.Fprintf(w, "\nbacktest of the moves of %s against %s (move rule %s):\n", c, r.cfg.truth, r.wcfg.Alerts.Rule)
+		sc, err := scoreTruth(w, c, r.workers[c].truth, tr)
+		if err != nil {
+			return err
+		}
+		fmt.Fprintf(w, "precision %.3f (%d right of %d moves at a planted move's refit or the next), recall %.3f (%d of %d visible planted moves, %d planted), %d late, false moves %.4f per product and refit elsewhere\n",
+			sc.precision(), sc.right, sc.right+sc.wrong, sc.recall(), sc.detected, sc.visible, sc.planted, sc.late, sc.falseRate())
+	}
+	return nil
 }

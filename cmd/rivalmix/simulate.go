@@ -24,6 +24,8 @@ type simulation struct {
 	switchShare float64
 	seed        uint64
 	firstWeek   int
+	// truth, when set, receives each refit's planted truth.
+	truth func(truthRefit)
 }
 
 func (s *simulation) register(fs interface {
@@ -66,6 +68,16 @@ func (s *simulation) each(fn func(refit string, msgs [][]byte) error) error {
 			msgs = append(msgs, ps[i].MessageJSON(refit))
 		}
 		msgs = append(msgs, []byte(fmt.Sprintf(`{"refit":%q,"complete":true,"expected":%d}`, refit, len(ps))))
+		if s.truth != nil {
+			tr := truthRefit{Category: s.category, Refit: refit, Segment: make(map[string]int, len(ps))}
+			for i := range ps {
+				tr.Segment[ps[i].ID] = ps[i].Segment
+				if r == seq.SwitchAt && seq.Switched[i] {
+					tr.Switched = append(tr.Switched, ps[i].ID)
+				}
+			}
+			s.truth(tr)
+		}
 		if err := fn(refit, msgs); err != nil {
 			return err
 		}
@@ -78,7 +90,9 @@ func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) e
 	fs := newFlagSet("simulate", "(--out FILE | --nats URL) [flags]",
 		"Writes or publishes weekly refit results of a fictional category (Larkfield Grocers, breakfast\n"+
 			"cereals: an invented retailer) drawn from the model with known segments; a share of products\n"+
-			"switches segment at the middle refit. Each refit ends with a refit-complete control message.", stderr)
+			"switches segment at the middle refit. Each refit ends with a refit-complete control message.\n"+
+			"With --out FILE the true segments and planted moves go to FILE's truth file (FILE without\n"+
+			".jsonl, plus .truth.jsonl) for replay --truth.", stderr)
 	var s simulation
 	s.register(fs, 300, 1)
 	out := fs.String("out", "", "output file (JSON lines); - for stdout")
@@ -133,6 +147,10 @@ func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		defer f.Close()
 		w = f
 	}
+	var truthLines []truthRefit
+	if *out != "-" {
+		s.truth = func(tr truthRefit) { truthLines = append(truthLines, tr) }
+	}
 	bw := bufio.NewWriter(w)
 	err := s.each(func(refit string, msgs [][]byte) error {
 		for _, m := range msgs {
@@ -148,7 +166,11 @@ func runSimulate(ctx context.Context, args []string, stdout, stderr io.Writer) e
 		return fmt.Errorf("simulate: write %s: %w", *out, err)
 	}
 	if *out != "-" {
-		fmt.Fprintf(stderr, "wrote %d refits of %d products to %s\n", s.refits, s.products, *out)
+		tp := truthPath(*out)
+		if err := writeTruth(tp, truthLines); err != nil {
+			return fmt.Errorf("simulate: %w", err)
+		}
+		fmt.Fprintf(stderr, "wrote %d refits of %d products to %s, planted segments and moves to %s\n", s.refits, s.products, *out, tp)
 	}
 	return nil
 }

@@ -13,6 +13,11 @@ type Sequence struct {
 	// Drift is the standard deviation of the log-scale estimation noise of
 	// a re-estimating refit; 0 (the default) redraws every product.
 	Drift float64
+	// Hazard, when > 0, makes every product switch to another segment
+	// (drawn afresh from it) with this probability at every refit after
+	// the first, besides the planted switches at SwitchAt: a constant
+	// switch rate, as the switch filter of package alerts assumes.
+	Hazard float64
 
 	cfg      Config
 	products []Product
@@ -51,6 +56,11 @@ func (s *Sequence) Refit(r int) []Product {
 	nseg := len(s.cfg.Segments)
 	for i := range s.products {
 		p := &s.products[i]
+		if s.Hazard > 0 && nseg > 1 && s.src.Float64() < s.Hazard {
+			p.Segment = (p.Segment + 1 + s.src.IntN(nseg-1)) % nseg
+			Redraw(s.cfg, p, s.src)
+			continue
+		}
 		if r == s.SwitchAt && s.Switched[i] && nseg > 1 {
 			p.Segment = (p.Segment + 1 + s.src.IntN(nseg-1)) % nseg
 			Redraw(s.cfg, p, s.src)

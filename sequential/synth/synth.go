@@ -241,7 +241,12 @@ func (l Layout) String() string {
 // that need many different categories. Shares are drawn uniformly and
 // normalised, with no segment under 10% of the products.
 func RandomConfig(products int, layout Layout, src *rand.Rand) Config {
-	k := 3 + src.IntN(3)
+	return LayoutConfig(products, 3+src.IntN(3), layout, src)
+}
+
+// LayoutConfig draws a fictional category of the given size with k true
+// segments laid out as asked (the rule of RandomConfig with k fixed).
+func LayoutConfig(products, k int, layout Layout, src *rand.Rand) Config {
 	cfg := Config{Category: fmt.Sprintf("larkfield-%s-%d", layout, k), Products: products, Competitors: 10, FirstID: 1001}
 	order := src.Perm(k)
 	for c := 0; c < k; c++ {

@@ -43,7 +43,7 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	}
 	w.ps.SettleRefit()
 	data := w.ps.Data()
-	sum, err := w.ps.Summary(w.cfg.Summary)
+	sum, err := w.ps.Summary(w.summaryOptions())
 	if err != nil {
 		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
 	}
@@ -56,9 +56,14 @@ func (w *Worker) CompleteRefit(refit string) (RefitReport, error) {
 	if w.surpriseN > 0 {
 		rep.MeanSurprise = w.surpriseSum / float64(w.surpriseN)
 	}
+	em, err := w.emission(data, sum)
+	if err != nil {
+		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
+	}
 	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
 		Category: w.category, Refit: refit, Products: rep.Products, Data: data, Summary: sum,
 		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity, MeanSurprise: rep.MeanSurprise,
+		Emission: em,
 	})
 	if err != nil {
 		return rep, fmt.Errorf("category %s refit %s: %w", w.category, refit, err)
@@ -86,7 +91,7 @@ func (w *Worker) Current() (RefitReport, error) {
 		return rep, nil
 	}
 	data := w.ps.Data()
-	sum, err := sequential.Summarize(w.ps.Draws(), data, w.cfg.Summary)
+	sum, err := sequential.Summarize(w.ps.Draws(), data, w.summaryOptions())
 	if err != nil {
 		return rep, fmt.Errorf("category %s: %w", w.category, err)
 	}
@@ -97,9 +102,13 @@ func (w *Worker) Current() (RefitReport, error) {
 	rep.Distinct = w.ps.DistinctStates()
 	// Evaluating the last refit again against the memory it produced
 	// gives the labels it reported; the outcome's memory is discarded.
+	em, err := w.emission(data, sum)
+	if err != nil {
+		return rep, fmt.Errorf("category %s: %w", w.category, err)
+	}
 	out, err := alerts.Evaluate(w.cfg.Alerts, w.mem, alerts.Refit{
 		Category: w.category, Refit: w.lastRefit, Products: rep.Products, Data: data, Summary: sum,
-		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity,
+		ESS: rep.ESS, Particles: w.ps.NumParticles(), Diversity: rep.Diversity, Emission: em,
 	})
 	if err != nil {
 		return rep, fmt.Errorf("category %s: %w", w.category, err)
@@ -137,4 +146,23 @@ func BatchReport(cat, refit string, products []string, data []*sequential.Datum,
 	rep.Draws = figureDraws(slices.Clone(draws))
 	rep.History = []RefitPoint{newRefitPoint(&rep)}
 	return rep, nil
+}
+
+// emission returns the per-segment log predictive densities the filter
+// rule needs (nil under the band rule, which does not read them).
+func (w *Worker) emission(data []*sequential.Datum, sum sequential.Summary) ([][]float64, error) {
+	if w.cfg.Alerts.Rule != alerts.RuleFilter {
+		return nil, nil
+	}
+	return sequential.SegmentLogPredictive(w.ps.Draws(), data, sum.Partition, len(sum.Segments), w.cfg.Summary.Prior)
+}
+
+// summaryOptions returns the category's summary options with ExcessFrom
+// lowered, when needed, to the lowest probability at which a
+// missed-competitor alert stays in force (AlertProb - RealertMargin), so
+// that every alert in force has its expected excess for the ranking.
+func (w *Worker) summaryOptions() sequential.SummaryOptions {
+	opt := w.cfg.Summary
+	opt.ExcessFrom = min(opt.ExcessFrom, max(0, w.cfg.Alerts.AlertProb-w.cfg.Alerts.RealertMargin))
+	return opt
 }
