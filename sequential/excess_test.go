@@ -2,6 +2,7 @@ package sequential
 
 import (
 	"math"
+	"math/rand/v2"
 	"testing"
 
 	"gonum.org/v1/gonum/integrate/quad"
@@ -92,5 +93,56 @@ func TestExpectedExcessQuadrature(t *testing.T) {
 	want := 0.25*a.ExpectedExcess(0.25) + 0.75*b.ExpectedExcess(0.25)
 	if got := m.ExpectedExcess(0.25); math.Abs(got-want) > 1e-15 {
 		t.Errorf("mixture %v, want %v", got, want)
+	}
+}
+
+// TestMixedExpectedExcessSubsample: over more than excessDraws draws the
+// mixture's expected excess is estimated from excessDraws of them by
+// systematic resampling. Weights on three laws in the ratio 2 : 1 : 1
+// (the rest tiny) are reproduced exactly, and over 256 draws of scattered
+// kernels and random weights the estimate is within 10% of the full
+// weighted mean.
+func TestMixedExpectedExcessSubsample(t *testing.T) {
+	t.Parallel()
+	d := MustDatum([]float64{0.9, 0.5}, 10)
+	const n = 256
+	src := rand.New(rand.NewPCG(41, 7))
+	draws := make([]Draw, n)
+	thetas := make([]Theta, n)
+	for p := range draws {
+		thetas[p] = Theta{LogA: 0.6 * src.NormFloat64(), LogK: 0.3 * src.NormFloat64(), LogS: math.Log(0.2) + 0.4*src.NormFloat64()}
+		draws[p] = Draw{Labels: []uint16{0}, Segments: thetas[p : p+1], Alpha: 1}
+	}
+	exact := func(w []float64) float64 {
+		var s, ws float64
+		for p, th := range thetas {
+			nv, ok := NewNextValue(th, &d)
+			if !ok {
+				t.Fatal("no next value")
+			}
+			s += w[p] * nv.ExpectedExcess(0.25)
+			ws += w[p]
+		}
+		return s / ws
+	}
+	// Three laws carry all but 1e-9 of the weight, 1/2, 1/4 and 1/4.
+	w := make([]float64, n)
+	for p := range w {
+		w[p] = 1e-9 / n
+	}
+	w[10], w[100], w[200] = 0.5, 0.25, 0.25
+	got := NextValueMixture(draws, w, &d, 0).ExpectedExcess(0.25)
+	if want := exact(w); math.Abs(got-want) > 1e-6*want {
+		t.Errorf("three heavy laws: %.9g, want %.9g", got, want)
+	}
+	// Random weights over all 256.
+	for p := range w {
+		w[p] = src.Float64()
+	}
+	got = NextValueMixture(draws, w, &d, 0).ExpectedExcess(0.25)
+	if want := exact(w); math.Abs(got-want) > 0.1*want {
+		t.Errorf("256 laws: %.6g, full mixture %.6g", got, want)
+	} else {
+		t.Logf("256 laws: subsample %.6g, full mixture %.6g (rel %.3g)", got, want, math.Abs(got-want)/want)
 	}
 }
