@@ -196,6 +196,11 @@ func TestSettingsFile(t *testing.T) {
 	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "particle") {
 		t.Errorf("unknown key: err = %v", err)
 	}
+	f.configFile = ""
+	f.coSegmentLimit = -1
+	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "--cosegment-limit -1") {
+		t.Errorf("negative co-segment limit: err = %v", err)
+	}
 }
 
 // TestExampleSettingsFile loads testdata/larkfield-settings.yaml, the

@@ -69,6 +69,9 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 
 func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	sc := stream.DefaultServiceConfig()
+	if f.coSegmentLimit < 0 {
+		return sc, fmt.Errorf("--cosegment-limit %d: want 0 (the default, %d products) or more", f.coSegmentLimit, figures.DefaultCoSegmentLimit)
+	}
 	sc.Worker.Seed = f.seed
 	sc.Worker.Particles.Particles = f.particles
 	sc.Worker.BatchSize = f.batch
