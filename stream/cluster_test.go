@@ -43,6 +43,22 @@ func summariesByCategory(t *testing.T, ctx context.Context, js jetstream.JetStre
 	return sums, count
 }
 
+// checkInputOrder fails the test unless RIVALMIX_IN holds exactly the
+// published messages in publish order: the reference worker reads them in
+// that order, and a category's state depends on the order of its input.
+func checkInputOrder(t *testing.T, ctx context.Context, js jetstream.JetStream, published []inputMsg) {
+	t.Helper()
+	stored := streamMessages(t, ctx, js, "RIVALMIX_IN")
+	if len(stored) != len(published) {
+		t.Fatalf("input stream holds %d messages, %d were published", len(stored), len(published))
+	}
+	for i, m := range stored {
+		if !bytes.Equal(m.Data, published[i].data) {
+			t.Fatalf("input stream seq %d (%s) is not message %d as published: the input order differs from the reference's", m.Sequence, m.Subject, i)
+		}
+	}
+}
+
 // TestPartitionedTakeover runs three partitioned workers on one server,
 // 12 categories over 6 partitions, and crashes one of them between two
 // refits: every category gets exactly one summary per refit, no event id
@@ -89,6 +105,14 @@ func TestPartitionedTakeover(t *testing.T) {
 	}
 	want, _ := readState(t, refPath)
 
+	// The input stream exists before anything is published to it, as
+	// REF_IN does above: an asynchronous publish that finds no stream
+	// yet is retried by the client after a wait, each on its own timer,
+	// so the stream would store the messages in another order than the
+	// reference's and every later comparison would be meaningless.
+	if err := CreateStreams(ctx, js, partitionedConfig("setup", nparts, ttl).Bus); err != nil {
+		t.Fatal(err)
+	}
 	dir := t.TempDir()
 	var ins []*instance
 	for w := range 3 {
@@ -99,7 +123,9 @@ func TestPartitionedTakeover(t *testing.T) {
 	// one that breaks the input contract in a partitioned category.
 	bad := []inputMsg{{subject: "rivalmix.in", data: []byte(`{"product":"P-1"}`)},
 		{subject: "rivalmix.in." + cats[3].name, data: []byte(`{"product":`)}}
-	publishInput(t, ctx, js, append(append([]inputMsg{}, refits[0]...), bad...))
+	published := append(append([]inputMsg{}, refits[0]...), bad...)
+	publishInput(t, ctx, js, published)
+	checkInputOrder(t, ctx, js, published)
 	waitSummaries := func(refit string) {
 		t.Helper()
 		for {
@@ -136,6 +162,7 @@ func TestPartitionedTakeover(t *testing.T) {
 	ins[1].nc.Close()
 	ins[1].abandon()
 	publishInput(t, ctx, js, refits[1])
+	checkInputOrder(t, ctx, js, append(published, refits[1]...))
 	waitSummaries(refitName(1))
 	t.Logf("claims before the crash %v; refit after it fully summarised %s after the crash (claim TTL %s)", held, time.Since(killed).Round(time.Millisecond), ttl)
 	if got := len(ins[0].svc.claims.Held()) + len(ins[2].svc.claims.Held()); got != nparts {
