@@ -140,7 +140,11 @@ func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Ran
 // small batch (single changes between refits) the population is then
 // watched: when the changes since the last waste-free step have left an
 // ESS share below RenewBelow, or fewer than DiversityFloor * P of the
-// states are distinct partitions, it runs a waste-free step. After a
+// states are distinct partitions, it runs a waste-free step. Only a
+// resampling makes copies, so distinct states are counted only at a
+// settle that follows one (counting at every single change cost as much
+// as the settle's own moves); the rule depends on saved state alone, so
+// a decoded system decides as the original would. After a
 // large batch (a refit in progress) it renews nothing: copies are
 // expected, and the refit's end (SettleRefit) runs a waste-free step
 // that starts from the weights as the whole refit left them, so a
@@ -151,9 +155,11 @@ func (ps *Particles) Settle() bool {
 		return false
 	}
 	large := float64(ps.cfg.Sweeps*len(ps.touched)) >= float64(ps.n)
+	copied := ps.resampledSince
 	resampled := ps.settle(ps.cfg.Sweeps)
+	copied = copied || resampled
 	if ps.n >= 2 && !large && (ps.movedShare() < ps.cfg.RenewBelow ||
-		ps.cfg.DiversityFloor > 0 && float64(ps.DistinctStates()) < ps.cfg.DiversityFloor*float64(len(ps.parts))) {
+		copied && ps.cfg.DiversityFloor > 0 && float64(ps.DistinctStates()) < ps.cfg.DiversityFloor*float64(len(ps.parts))) {
 		ps.wasteFree()
 		return true
 	}
@@ -454,19 +460,21 @@ func (ps *Particles) DistinctStates() int {
 	keys := make([][]int32, P)
 	hashes := make([]uint64, P)
 	parallelFor(ps.cfg.Workers, P, func(p int) {
-		lab := ps.parts[p].labels.l
-		rename := map[uint16]int32{}
+		st := ps.parts[p]
+		// Labels index st.segs; rename[l]-1 is l's rank of first
+		// appearance (0: not seen yet), so equal partitions get equal keys.
+		rename := make([]int32, len(st.segs))
+		next := int32(0)
 		z := make([]int32, 0, ps.n)
-		for s, l := range lab {
+		for s, l := range st.labels.l {
 			if ps.slots[s] == nil {
 				continue
 			}
-			c, ok := rename[l]
-			if !ok {
-				c = int32(len(rename))
-				rename[l] = c
+			if rename[l] == 0 {
+				next++
+				rename[l] = next
 			}
-			z = append(z, c)
+			z = append(z, rename[l]-1)
 		}
 		keys[p] = z
 		hashes[p] = hashLabels(z)
