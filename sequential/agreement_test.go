@@ -88,7 +88,7 @@ func applyRefit(t testing.TB, ps *sequential.Particles, products []synth.Product
 			t.Fatal(err)
 		}
 		if ps.Pending() >= 256 {
-			ps.Settle()
+			ps.SettleInRefit()
 		}
 	}
 	ps.SettleRefit()

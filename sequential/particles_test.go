@@ -1046,7 +1046,7 @@ func benchReplaceWithSettle(b *testing.B, drift, keepESS float64) {
 	b.ResetTimer()
 	for i := 0; i < b.N; i++ {
 		if i > 0 && i%256 == 0 {
-			ps.Settle()
+			ps.SettleInRefit()
 		}
 		if _, err := ps.Replace(bs.ids[i%n], bs.refits[(i/n)%2][i%n]); err != nil {
 			b.Fatal(err)
@@ -1081,14 +1081,15 @@ func benchRefit5000(b *testing.B, drift, keepESS float64, sweeps int) {
 	var end time.Duration
 	for i := 0; i < b.N; i++ {
 		refit := bs.refits[i%2]
-		// As the service runs it: a settle after every 256 changes, and
-		// the refit-end rejuvenation (SettleRefit) when the refit completes.
+		// As the service runs it: a settle in the open refit after every
+		// 256 changes, and the refit-end rejuvenation (SettleRefit) when
+		// the refit completes.
 		for j, id := range bs.ids {
 			if _, err := ps.Replace(id, refit[j]); err != nil {
 				b.Fatal(err)
 			}
 			if (j+1)%256 == 0 {
-				ps.Settle()
+				ps.SettleInRefit()
 			}
 		}
 		t0 := time.Now()

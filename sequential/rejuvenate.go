@@ -148,15 +148,33 @@ func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Ran
 // large batch (a refit in progress) it renews nothing: copies are
 // expected, and the refit's end (SettleRefit) runs a waste-free step
 // that starts from the weights as the whole refit left them, so a
-// renewal in between would only be paid for twice. It reports whether
-// it resampled or renewed. Before the first build it does nothing.
-func (ps *Particles) Settle() bool {
+// renewal in between would only be paid for twice. A caller that knows a
+// refit is open calls SettleInRefit, which never renews (in a large
+// category a micro-batch is small however many refit changes follow) nor
+// moves. It
+// reports whether it resampled or renewed. Before the first build it does
+// nothing.
+func (ps *Particles) Settle() bool { return ps.settleWatch(true) }
+
+// SettleInRefit ends a micro-batch of a refit still in progress: it
+// resamples if the ESS is below the threshold and clears the changed set,
+// with neither the passes of Settle nor its watch. The refit's end
+// (SettleRefit) runs a waste-free step that moves every product, kernel
+// and alpha, so moves made in between would be paid for twice: in a
+// 5,000-product refit they were half the refit's cost.
+func (ps *Particles) SettleInRefit() bool { return ps.settleWatch(false) }
+
+func (ps *Particles) settleWatch(watch bool) bool {
 	if !ps.built {
 		return false
 	}
-	large := float64(ps.cfg.Sweeps*len(ps.touched)) >= float64(ps.n)
+	sweeps := ps.cfg.Sweeps
+	if !watch {
+		sweeps = 0
+	}
+	large := !watch || float64(sweeps*len(ps.touched)) >= float64(ps.n)
 	copied := ps.resampledSince
-	resampled := ps.settle(ps.cfg.Sweeps)
+	resampled := ps.settle(sweeps)
 	copied = copied || resampled
 	if ps.n >= 2 && !large && (ps.movedShare() < ps.cfg.RenewBelow ||
 		copied && ps.cfg.DiversityFloor > 0 && float64(ps.DistinctStates()) < ps.cfg.DiversityFloor*float64(len(ps.parts))) {

@@ -34,7 +34,13 @@ func TestSettleRenewsOnlyBetweenRefits(t *testing.T) {
 	if got := ps.movedShare(); !(got < ps.cfg.RenewBelow) {
 		t.Fatalf("moved share after the collapse = %v, want below RenewBelow %v", got, ps.cfg.RenewBelow)
 	}
-	// The next settle ends a single change: the watch renews.
+	// A single change inside an open refit: no renewal either.
+	ps.markTouched(1)
+	ps.SettleInRefit()
+	if got := ps.LastStep().Seq; got != before {
+		t.Fatalf("SettleInRefit after a single change ran a waste-free step (seq %d -> %d)", before, got)
+	}
+	// The next settle ends a single change between refits: the watch renews.
 	ps.markTouched(0)
 	ps.Settle()
 	if got := ps.LastStep().Seq; got != before+1 {

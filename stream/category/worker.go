@@ -140,11 +140,18 @@ var ErrModel = errors.New("category: message not applicable")
 
 // Apply applies one decoded message; seq is its input position. Control
 // messages (refit complete) are not handled here: call CompleteRefit.
-// After BatchSize changed products it settles (closes the micro-batch).
+// After BatchSize changed products it settles (closes the micro-batch):
+// inside a refit not yet completed (the message names a refit other than
+// the last completed one) without the diversity watch, whose renewal the
+// refit's end repeats; between refits with it.
 func (w *Worker) Apply(m input.Message, seq uint64) (Applied, error) {
 	out, err := w.apply(m, seq)
 	if err == nil && w.ps.Pending() >= w.cfg.BatchSize {
-		w.ps.Settle()
+		if m.Kind == input.KindDatum && m.Refit != w.lastRefit {
+			w.ps.SettleInRefit()
+		} else {
+			w.ps.Settle()
+		}
 	}
 	return out, err
 }

@@ -81,3 +81,56 @@ func alternatingMoves(t *testing.T, noBand bool) int {
 	t.Logf("band removed %v: alternating product moved %d times over 8 refits", noBand, moves)
 	return moves
 }
+
+// TestWorkerRenewsOnlyAtRefitEnd checks that while a refit is open
+// (messages name a refit other than the last completed one) the
+// micro-batch settles never run a waste-free step, however small each
+// batch is against the category, and that the refit's end runs one. The
+// same redrawn data sent as corrections of the completed refit (the
+// diversity watch on) do provoke renewals, which shows the check has
+// power.
+func TestWorkerRenewsOnlyAtRefitEnd(t *testing.T) {
+	t.Parallel()
+	cfg := synth.Scenario()
+	cfg.Products = 60
+	renewals := func(refit string) (inside, atEnd uint64) {
+		seq := synth.NewSequence(cfg, 2, 0, rand.New(rand.NewPCG(21, 22)))
+		wc := DefaultWorkerConfig()
+		wc.Particles.Particles = 32
+		wc.Particles.BuildChains, wc.Particles.BuildBurn = 4, 15
+		wc.BatchSize = 4 // settles of 4 changes: small against 60 products
+		// A watch that renews once the changes have left half the ESS, so
+		// that a redraw of every product calls for renewals.
+		wc.Particles.RenewBelow = 0.5
+		w, err := NewWorker("cereal", wc)
+		if err != nil {
+			t.Fatal(err)
+		}
+		for i, p := range seq.Refit(0) {
+			if _, err := w.Apply(decodeOrFail(t, p.MessageJSON("W0")), uint64(i+1)); err != nil {
+				t.Fatal(err)
+			}
+		}
+		if _, err := w.CompleteRefit("W0"); err != nil {
+			t.Fatal(err)
+		}
+		before := w.Particles().LastStep().Seq
+		for i, p := range seq.Refit(1) {
+			if _, err := w.Apply(decodeOrFail(t, p.MessageJSON(refit)), uint64(100+i)); err != nil {
+				t.Fatal(err)
+			}
+		}
+		inside = w.Particles().LastStep().Seq - before
+		if _, err := w.CompleteRefit(refit); err != nil {
+			t.Fatal(err)
+		}
+		return inside, w.Particles().LastStep().Seq - before - inside
+	}
+	inside, atEnd := renewals("W1")
+	if inside != 0 || atEnd != 1 {
+		t.Errorf("open refit: %d waste-free steps inside, %d at its end; want 0 and 1", inside, atEnd)
+	}
+	if corr, _ := renewals("W0"); corr == 0 {
+		t.Error("the same data as corrections of the completed refit renewed nothing: the check has no power")
+	}
+}
