@@ -247,6 +247,21 @@ func RandomConfig(products int, layout Layout, src *rand.Rand) Config {
 // LayoutConfig draws a fictional category of the given size with k true
 // segments laid out as asked (the rule of RandomConfig with k fixed).
 func LayoutConfig(products, k int, layout Layout, src *rand.Rand) Config {
+	return layoutConfig(products, k, layout, overlapStep, src)
+}
+
+// overlapStep is the scale ratio of neighbouring Overlapping segments.
+const overlapStep = 1.35
+
+// OverlapConfig is LayoutConfig for Overlapping segments whose scales
+// differ by the factor step from one to the next instead of 1.35 (the
+// same draws otherwise): a knob for studies of how detectability grows
+// with the distance between segments.
+func OverlapConfig(products, k int, step float64, src *rand.Rand) Config {
+	return layoutConfig(products, k, Overlapping, step, src)
+}
+
+func layoutConfig(products, k int, layout Layout, step float64, src *rand.Rand) Config {
 	cfg := Config{Category: fmt.Sprintf("larkfield-%s-%d", layout, k), Products: products, Competitors: 10, FirstID: 1001}
 	order := src.Perm(k)
 	for c := 0; c < k; c++ {
@@ -254,7 +269,7 @@ func LayoutConfig(products, k int, layout Layout, src *rand.Rand) Config {
 		r := float64(order[c])
 		switch layout {
 		case Overlapping:
-			spec.S = 0.18 * math.Pow(1.35, r)
+			spec.S = 0.18 * math.Pow(step, r)
 			spec.K = 1.2 + 0.8*src.Float64()
 			spec.A = 0.8 + 0.7*src.Float64()
 			spec.P = 0.3 + 0.2*src.Float64()
