@@ -2,6 +2,7 @@ package stream
 
 import (
 	"fmt"
+	"hash/fnv"
 	"strconv"
 	"strings"
 	"time"
@@ -22,6 +23,21 @@ const MaxPartitions = 1024
 // partition (Partitions > 1); with one partition the service runs as a
 // single worker with one durable consumer, as before partitions existed.
 func (c BusConfig) Partitioned() bool { return c.Partitions > 1 }
+
+// CategoryPartition returns the partition the server's partition()
+// transform puts a category in: the 32-bit FNV-1a hash of the category
+// token modulo Partitions (nats-server's subject mapping;
+// TestPartitionTransform checks it against a real server). 0 with one
+// partition. The hash spreads categories unevenly over few partitions:
+// 12 categories over 6 can land 1, 2, 2, 3, 3, 1.
+func (c BusConfig) CategoryPartition(category string) int {
+	if !c.Partitioned() {
+		return 0
+	}
+	h := fnv.New32a()
+	h.Write([]byte(category))
+	return int(h.Sum32() % uint32(c.Partitions))
+}
 
 // PartitionTransform returns the input stream's subject transform when
 // Partitioned: a message published on rivalmix.in.<category> is stored as

@@ -60,6 +60,9 @@ func TestPartitionTransform(t *testing.T) {
 			if err != nil {
 				t.Fatalf("category of %s: %v", m.Subject(), err)
 			}
+			if q := bc.CategoryPartition(cat); q != p {
+				t.Errorf("category %s stored in partition %d, CategoryPartition says %d", cat, p, q)
+			}
 			if q, ok := partOf[cat]; ok && q != p {
 				t.Errorf("category %s in partitions %d and %d", cat, q, p)
 			}

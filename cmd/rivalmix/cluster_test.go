@@ -180,12 +180,22 @@ func (w *workerProc) stop(t testing.TB) {
 // clusterInput is refits of the categories as (subject, body) pairs, one
 // slice per refit, each category's refit-complete after its products.
 func clusterInput(ncat, products, refits int) [][][2]string {
+	idx := make([]int, ncat)
+	for i := range idx {
+		idx[i] = i
+	}
+	return clusterInputOf(idx, products, refits)
+}
+
+// clusterInputOf is clusterInput over the categories cereal-<i> for the
+// given indices i.
+func clusterInputOf(idx []int, products, refits int) [][][2]string {
 	type cat struct {
 		name string
 		seq  *synth.Sequence
 	}
 	var cats []cat
-	for i := range ncat {
+	for _, i := range idx {
 		cfg := synth.Scenario()
 		cfg.Category = fmt.Sprintf("cereal-%02d", i)
 		cfg.Products = products
