@@ -41,7 +41,7 @@ var crashScenarios = flag.Int("crash-scenarios", 0, "scenarios of TestServiceCra
 // binaryKills overrides the number of SIGKILLs of TestServeBinaryKilled
 // for the long torture run (DEVELOPERS.md):
 //
-//	go test ./stream/ -run TestServeBinaryKilled -v -timeout 60m -args -binary-kills 300
+//	go test ./stream/ -run TestServeBinaryKilled -v -timeout 60m -args -binary-kills 1000
 var binaryKills = flag.Int("binary-kills", 0, "SIGKILLs of TestServeBinaryKilled (0: 12)")
 
 // crashSeed picks the crash plans and the binary's kill instants; a second
