@@ -330,18 +330,34 @@ type testCategory struct {
 	name string
 	seq  *synth.Sequence
 	n    int
+	// refits is how many refits the sequence plans; refitName(refits-1)
+	// is the last one a finished run has applied.
+	refits int
 }
 
 // newTestCategory draws a fictional category (synth's invented retailer)
-// of n products with first id firstID.
+// of n products with first id firstID, over two refits.
 func newTestCategory(name string, n, firstID int, seed uint64) *testCategory {
+	return newTestCategoryRefits(name, n, firstID, seed, 2)
+}
+
+// newTestCategoryRefits is newTestCategory over the given number of
+// refits (at least 2); the planted segment switches happen at refit
+// refits/2.
+func newTestCategoryRefits(name string, n, firstID int, seed uint64, refits int) *testCategory {
+	if refits < 2 {
+		panic("stream: newTestCategoryRefits wants at least 2 refits")
+	}
 	cfg := synth.Scenario()
 	cfg.Category = name
 	cfg.Products = n
 	cfg.FirstID = firstID
 	src := rand.New(rand.NewPCG(seed, 0x5eed))
-	return &testCategory{name: name, seq: synth.NewSequence(cfg, 2, 0.25, src), n: n}
+	return &testCategory{name: name, seq: synth.NewSequence(cfg, refits, 0.25, src), n: n, refits: refits}
 }
+
+// lastRefit is the name of the category's last planned refit.
+func (c *testCategory) lastRefit() string { return refitName(c.refits - 1) }
 
 // refitName is the name of refit r (0-based).
 func refitName(r int) string { return fmt.Sprintf("2026-W%02d", 40+r) }
