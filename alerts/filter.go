@@ -56,8 +56,9 @@ func ParseMoveRule(s string) (MoveRule, error) {
 // point partition do not draw prior mass away from the real ones.
 //
 // Emission: e[c] = the posterior predictive density of the refit's datum
-// as a member of segment c (sequential.SegmentLogPredictive, mixed over
-// the particles), raised to the power gamma (Config.Temper): refits that
+// as a member of segment c (sequential.SegmentLogPredictive: under the
+// particle's segment that holds most of c's members, mixed over the
+// particles), raised to the power gamma (Config.Temper): refits that
 // re-estimate a product on mostly the same weeks of sales repeat much of
 // the last one's evidence, and counting each in full would make the
 // filter confident too soon.

@@ -7,18 +7,24 @@ import (
 
 // SegmentLogPredictive returns, for each product i and each point segment
 // c of partition (0..k-1), the log posterior predictive density of
-// data[i] as a member of segment c: the likelihood of the product's datum
-// had it belonged to the segment formed by c's other members, mixed over
-// the weighted draws.
+// data[i] as a member of segment c, mixed over the weighted draws.
 //
-// In draw d the other members of c sit in draw segments j with shares
-// pi_dcj (members of c labelled j, i itself left out, over all of them);
-// the datum's density as a member of draw segment j is the beta-binomial
-// predictive of its count given j's other members (p integrated out,
-// model section 3) times the order-statistic density of its values under
-// j's kernel (section 2). Then
+// In draw d, segment c is represented by the draw segment j*(d, c) that
+// holds most of c's other members (i itself left out; the lowest label on
+// ties); the datum's density as a member of draw segment j is the
+// beta-binomial predictive of its count given j's other members (p
+// integrated out, model section 3) times the order-statistic density of
+// its values under j's kernel (section 2). Then
 //
-//	out[i][c] = log sum_d w_d sum_j pi_dcj lik_d(data[i] | j).
+//	out[i][c] = log sum_d w_d lik_d(data[i] | j*(d, c)).
+//
+// An earlier form mixed over every draw segment holding some of c's
+// members, in proportion to their shares. A few uncertain members of c
+// sitting elsewhere in some draws then gave c a floor of about their share
+// times the density under another segment's kernel, which capped the
+// contrast between well-separated segments near 1/share (a factor of
+// 25-40 where the true kernels gave e^50 and more) and left the switch
+// filter under-confident.
 //
 // When c holds product i alone, its "other members" are i itself: the
 // draw segment i sits in. The kernels of a draw were fitted with data[i]
@@ -111,32 +117,20 @@ func SegmentLogPredictive(draws []Draw, data []*Datum, partition []int, k int, p
 				if c == ci {
 					others--
 				}
-				var v float64
-				if others == 0 {
-					v = lik[own]
-				} else {
+				jstar := own
+				if others > 0 {
 					row := comp[c*nj : (c+1)*nj]
-					m := math.Inf(-1)
+					most := 0.0
 					for j, cnt := range row {
 						if j == own && c == ci {
 							cnt--
 						}
-						if cnt > 0 && lik[j] > m {
-							m = lik[j]
+						if cnt > most {
+							jstar, most = j, cnt
 						}
 					}
-					s := 0.0
-					for j, cnt := range row {
-						if j == own && c == ci {
-							cnt--
-						}
-						if cnt > 0 {
-							s += cnt * math.Exp(lik[j]-m)
-						}
-					}
-					v = m + math.Log(s/others)
 				}
-				acc[i][c] = logAddExp(acc[i][c], lw+v)
+				acc[i][c] = logAddExp(acc[i][c], lw+lik[jstar])
 			}
 		}
 	}

@@ -9,9 +9,9 @@ import (
 // weighted draws over four products against the formula written out
 // term by term: the beta-binomial count predictive from log-gamma
 // (model section 3) and the order-statistic value density (ValueLogLik,
-// checked in datum_test.go), mixed by the shares of each point segment's
-// other members among the draw's segments, then over the normalised
-// draw weights.
+// checked in datum_test.go) under the draw segment that holds most of
+// each point segment's other members, mixed over the normalised draw
+// weights.
 func TestSegmentLogPredictiveByHand(t *testing.T) {
 	t.Parallel()
 	mk := func(v []float64, l int) *Datum { d := MustDatum(v, l); return &d }
@@ -64,16 +64,56 @@ func TestSegmentLogPredictiveByHand(t *testing.T) {
 						others = append(others, m)
 					}
 				}
-				s := 0.0
+				// The draw segment holding most of the others, the
+				// lowest label on ties; i's own when there are none.
+				count := map[int]int{}
 				for _, m := range others {
-					s += math.Exp(lik(d, i, int(draws[d].Labels[m]))) / float64(len(others))
+					count[int(draws[d].Labels[m])]++
 				}
-				total += w[d] * s
+				jstar, most := int(draws[d].Labels[i]), 0
+				for j := 0; j < len(draws[d].Segments); j++ {
+					if count[j] > most {
+						jstar, most = j, count[j]
+					}
+				}
+				total += w[d] * math.Exp(lik(d, i, jstar))
 			}
 			want := math.Log(total)
 			if math.Abs(got[i][c]-want) > 1e-9*math.Max(1, math.Abs(want)) {
 				t.Errorf("product %d segment %d: %v, want %v", i, c, got[i][c], want)
 			}
 		}
+	}
+}
+
+// TestSegmentLogPredictiveIgnoresStrayMembers checks the property the
+// representative draw segment is for: one uncertain member of a point
+// segment sitting, in the only draw, with another kernel that fits the
+// datum far better does not lift the segment's density towards that
+// kernel's (a mixture by shares would give about log(1/4) plus it).
+func TestSegmentLogPredictiveIgnoresStrayMembers(t *testing.T) {
+	t.Parallel()
+	mk := func(v []float64) *Datum { d := MustDatum(v, 10); return &d }
+	// Four members at scale 0.05, one stray, and the product scored
+	// (last) with values at scale 0.5.
+	data := []*Datum{mk([]float64{0.06, 0.04}), mk([]float64{0.05}), mk([]float64{0.07, 0.05, 0.03}), mk([]float64{0.04}),
+		mk([]float64{0.3}), mk([]float64{0.9, 0.6, 0.5})}
+	small := Theta{LogA: 0, LogK: math.Log(1.5), LogS: math.Log(0.05)}
+	large := Theta{LogA: 0, LogK: math.Log(1.5), LogS: math.Log(0.5)}
+	draws := []Draw{{Labels: []uint16{0, 0, 0, 0, 1, 1}, Segments: []Theta{small, large}, Alpha: 1}}
+	// Point segment 0: the four small ones and the stray; 1: the product.
+	got, err := SegmentLogPredictive(draws, data, []int{0, 0, 0, 0, 0, 1}, 2, DefaultPrior())
+	if err != nil {
+		t.Fatal(err)
+	}
+	under := func(th Theta) float64 { return data[5].ValueLogLik(th) }
+	gap := under(large) - under(small)
+	if gap < 20 {
+		t.Fatalf("the case needs a datum far better under the large kernel: gap %.1f nats", gap)
+	}
+	// Segment 0 is scored under the small kernel: its value part, plus a
+	// count part that is the same order for both segments.
+	if d := got[5][0] - got[5][1]; d > -gap+5 {
+		t.Errorf("segment of four small members and one stray scores %.1f nats against the large one's segment; the kernels differ by %.1f", d, gap)
 	}
 }
