@@ -20,6 +20,9 @@ type btCase struct {
 	drift     float64 // > 0: refits re-estimate the values (synth.Sequence.Drift)
 	products  int
 	particles int
+	// step, when > 0, spaces the overlapping segments' scales by this
+	// factor instead of 1.35 (synth.OverlapConfig).
+	step float64
 }
 
 func (c btCase) config(seed uint64) synth.Config {
@@ -27,6 +30,9 @@ func (c btCase) config(seed uint64) synth.Config {
 		cfg := synth.Scenario()
 		cfg.Products = c.products
 		return cfg
+	}
+	if c.step > 0 {
+		return synth.OverlapConfig(c.products, 4, c.step, rand.New(rand.NewPCG(seed, 303)))
 	}
 	cfg := synth.LayoutConfig(c.products, 4, synth.Overlapping, rand.New(rand.NewPCG(seed, 303)))
 	return cfg
@@ -257,7 +263,9 @@ func btRow(rule string, s *btScore) string {
 // and asserts the targets on separated segments (precision >= 0.95,
 // recall >= 0.9, false moves <= 0.5% per refit) for the filter with the
 // rule's SwitchRate (calibration: TestFilterCalibrationHazard);
-// on overlapping segments it logs the scores (see README: the filter does
+// on overlapping segments (also spaced at scale step 2.0, where the
+// oracle of TestOracleSwitchDetection reaches the targets) it
+// logs the scores (see README: the filter does
 // not beat the band rule there, and the band rule stays the default).
 // Without the flag (CI) one seed of separated segments with independent
 // refits runs at 200 products and 48 particles (-short: 120 and 32) and
@@ -270,6 +278,10 @@ func TestBacktestMoveRules(t *testing.T) {
 		{name: "separated/re-estimated", drift: 0.1, products: 250, particles: 128},
 		{name: "overlapping/independent", overlap: true, products: 310, particles: 128},
 		{name: "overlapping/re-estimated", overlap: true, drift: 0.1, products: 310, particles: 128},
+		// Overlapping segments spaced so that the oracle with the true
+		// kernels reaches the targets (TestOracleSwitchDetection:
+		// recall 0.877, precision 0.907 at step 2.0).
+		{name: "overlapping, step 2.0/independent", overlap: true, step: 2, products: 310, particles: 128},
 	}
 	seeds := []uint64{11, 12, 13, 14, 15}
 	if !*backtestFlag {
