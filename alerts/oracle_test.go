@@ -6,6 +6,8 @@ import (
 	"math/rand/v2"
 	"testing"
 
+	"gonum.org/v1/gonum/floats"
+
 	"rivalmix/sequential"
 	"rivalmix/sequential/synth"
 )
@@ -110,18 +112,8 @@ func oracleSwitches(cfg synth.Config, refits int, share, drift float64, seed uin
 	return sc
 }
 
-func logAdd(a, b float64) float64 {
-	if math.IsInf(a, -1) {
-		return b
-	}
-	if math.IsInf(b, -1) {
-		return a
-	}
-	if a < b {
-		a, b = b, a
-	}
-	return a + math.Log1p(math.Exp(b-a))
-}
+// logAdd returns log(exp(a) + exp(b)) (gonum's floats.LogSumExp).
+func logAdd(a, b float64) float64 { return floats.LogSumExp([]float64{a, b}) }
 
 // TestOracleSwitchDetection runs the oracle detector (oracleSwitches) on
 // the backtest's cases and seeds (TestBacktestMoveRules): its recall and
