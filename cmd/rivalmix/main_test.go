@@ -11,6 +11,7 @@ import (
 	"sort"
 	"strings"
 	"testing"
+	"time"
 
 	"rivalmix/alerts"
 )
@@ -200,6 +201,21 @@ func TestSettingsFile(t *testing.T) {
 	f.coSegmentLimit = -1
 	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "--cosegment-limit -1") {
 		t.Errorf("negative co-segment limit: err = %v", err)
+	}
+	f.coSegmentLimit = 0
+	// The output stream's duplicate window: taken from the flag, raised
+	// to what takeovers need when partitioned, refused when negative.
+	f.dupWindow = 24 * time.Hour
+	if sc, err := f.serviceConfig(); err != nil || sc.Bus.DuplicateWindow != 24*time.Hour {
+		t.Errorf("--duplicate-window 24h: window %v, err %v", sc.Bus.DuplicateWindow, err)
+	}
+	f.dupWindow, f.partitions, f.claimTTL = time.Minute, 6, time.Minute
+	if sc, err := f.serviceConfig(); err != nil || sc.Bus.DuplicateWindow != 3*time.Minute {
+		t.Errorf("--duplicate-window 1m with 6 partitions and a 1m claim TTL: window %v, err %v; want 3m", sc.Bus.DuplicateWindow, err)
+	}
+	f.dupWindow = -time.Second
+	if _, err := f.serviceConfig(); err == nil || !strings.Contains(err.Error(), "--duplicate-window -1s") {
+		t.Errorf("negative duplicate window: err = %v", err)
 	}
 }
 

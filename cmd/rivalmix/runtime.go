@@ -41,6 +41,7 @@ type serviceFlags struct {
 	partitions                                       int
 	claimTTL                                         time.Duration
 	workerID                                         string
+	dupWindow                                        time.Duration
 }
 
 func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen string) {
@@ -64,6 +65,7 @@ func (f *serviceFlags) register(fs *flag.FlagSet, defaultState, defaultListen st
 	fs.IntVar(&f.replicas, "replicas", sc.Bus.Replicas, "copies of each stream, consumer, claims bucket and state object store in a NATS cluster (3 across failure domains in production; the embedded server is one machine only)")
 	fs.IntVar(&f.partitions, "partitions", sc.Bus.Partitions, "partitions the categories are spread over by the server's partition() mapping; > 1 runs this worker as one of several, each partition claimed by one worker at a time (fixed when the input stream is created)")
 	fs.DurationVar(&f.claimTTL, "claim-ttl", sc.Claims.TTL, "lease lifetime of a claimed partition: a stopped worker's partitions are taken over within this plus about a second")
+	fs.DurationVar(&f.dupWindow, "duplicate-window", sc.Bus.DuplicateWindow, "how long the output stream remembers event ids, set at every start: an event re-sent within it (after a crash or a takeover) is dropped, so make it longer than the longest outage to ride out (raised to 2 x --claim-ttl + 1m when partitioned)")
 	fs.StringVar(&f.workerID, "worker-id", "", "this worker's name in the claims bucket (letters, digits, '-', '_'); empty means <hostname>-<pid>")
 }
 
@@ -86,6 +88,12 @@ func (f *serviceFlags) serviceConfig() (stream.ServiceConfig, error) {
 	}
 	if f.claimTTL != 0 {
 		sc.Claims.TTL = f.claimTTL
+	}
+	switch {
+	case f.dupWindow < 0:
+		return sc, fmt.Errorf("--duplicate-window %s: want a positive duration (the default is %s)", f.dupWindow, sc.Bus.DuplicateWindow)
+	case f.dupWindow > 0:
+		sc.Bus.DuplicateWindow = f.dupWindow
 	}
 	sc.Claims.Worker = f.workerID
 	if sc.Claims.Worker == "" {
