@@ -148,12 +148,10 @@ func (s *State) refreshTouchedSegments(touched []int, mem [][]int, src *rand.Ran
 // large batch (a refit in progress) it renews nothing: copies are
 // expected, and the refit's end (SettleRefit) runs a waste-free step
 // that starts from the weights as the whole refit left them, so a
-// renewal in between would only be paid for twice. A caller that knows a
-// refit is open calls SettleInRefit, which never renews (in a large
-// category a micro-batch is small however many refit changes follow) nor
-// moves. It
-// reports whether it resampled or renewed. Before the first build it does
-// nothing.
+// renewal in between would only be paid for twice. In a large category
+// a micro-batch is small however many refit changes follow, so a caller
+// that knows a refit is open calls SettleInRefit instead. Settle reports
+// whether it resampled or renewed. Before the first build it does nothing.
 func (ps *Particles) Settle() bool { return ps.settleWatch(true) }
 
 // SettleInRefit ends a micro-batch of a refit still in progress: it
