@@ -238,16 +238,8 @@ func collectRun(t *testing.T, ctx context.Context, js jetstream.JetStream, cfg S
 // readPosition returns the input position committed in the state file.
 func readPosition(t *testing.T, path string) uint64 {
 	t.Helper()
-	st, err := state.Open(path, state.Options{ReadOnly: true, Timeout: 5 * time.Second})
-	if err != nil {
-		t.Fatalf("state.Open %s: %v", path, err)
-	}
-	defer st.Close()
-	pos, _, err := st.Position()
-	if err != nil {
-		t.Fatalf("Position of %s: %v", filepath.Base(path), err)
-	}
-	return pos.StreamSeq
+	pos, _ := killedState(t, path)
+	return pos
 }
 
 // compareRuns checks that a run with crashes ended where the
@@ -683,7 +675,7 @@ func killedState(t *testing.T, path string) (position uint64, outbox int) {
 	t.Helper()
 	st, err := state.Open(path, state.Options{ReadOnly: true, Timeout: 5 * time.Second})
 	if err != nil {
-		t.Fatalf("state.Open %s after a kill: %v", path, err)
+		t.Fatalf("state.Open %s: %v", path, err)
 	}
 	defer st.Close()
 	pos, _, err := st.Position()
